@@ -1,0 +1,1 @@
+"""The ``riskprem`` command line: one module per command group; all printing lives here."""
