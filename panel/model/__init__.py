@@ -1,0 +1,1 @@
+"""The premium-panel model: specification, parameters, EM estimation and results."""

@@ -1,0 +1,215 @@
+"""The estimator: ``fit(panel, spec) -> PanelFit`` and ``evaluate(panel, params, spec)``.
+
+Pandas in, immutable result out; no printing, no I/O.
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+import pandas as pd
+
+from panel.data import Panel
+from panel.kalman import paths
+from panel.kalman.dense import dense_smoother
+from panel.model import inference, mstep as ms
+from panel.model.em import run_em
+from panel.model.params import Packer, Params, count_free
+from panel.model.result import PanelFit
+from panel.model.spec import ModelSpec, ResolvedSpec, SpecError
+from panel.model.start import starting_values, volatility_scale
+
+#: Free parameters above which ``std_errors="auto"`` skips the observed information.
+AUTO_SE_LIMIT = 150
+
+
+def _as_panel(data) -> Panel:
+    if isinstance(data, Panel):
+        return data
+    if isinstance(data, pd.DataFrame):
+        return Panel.from_frame(data)
+    raise TypeError("fit() takes a panel.data.Panel or a dates x assets DataFrame")
+
+
+class _Problem:
+    """Arrays and settings shared by the EM loop, inference and reporting of one fit."""
+
+    def __init__(self, panel: Panel, spec: ModelSpec):
+        self.panel = panel
+        self.spec = spec
+        self.Y = panel.values.to_numpy(dtype=float)
+        T, N = self.Y.shape
+        if N == 0 or T == 0:
+            raise SpecError("the panel is empty")
+        if np.isnan(self.Y).all(axis=0).any():
+            bad = [a for a, e in zip(panel.assets, np.isnan(self.Y).all(axis=0)) if e]
+            raise SpecError(f"assets with no observation: {', '.join(bad)}; drop them")
+        self.rs: ResolvedSpec = spec.resolve(N, panel.periods_per_year, T, panel.assets)
+        ppy = self.rs.ppy
+        self.s2 = volatility_scale(self.Y, spec.vol_scale)
+        ip = spec.initial_premium
+        self.init = None if ip is None else (ip.mean / ppy, (ip.vol / ppy) ** 2)
+        self.packer = Packer(self.rs, N)
+        self.sigma_prior = self._prior(spec.premium_prior)
+        self.h_prior = self._prior(spec.return_prior)
+        self.n_obs = int((~np.isnan(self.Y)).sum())
+
+    def _prior(self, prior):
+        if prior is None:
+            return ms.PriorTerms()
+        return ms.PriorTerms(weight=prior.weight, v=prior.vol ** 2 / self.rs.ppy)
+
+    def estep(self, p: Params):
+        return paths.estep(self.Y, p.Sigma, p.H, self.s2, self.init, self.spec.method)
+
+    def objective(self, e, p: Params) -> float:
+        return e.loglik + ms.log_prior(p, self.sigma_prior, self.h_prior)
+
+    def score(self, theta, like: Params) -> np.ndarray:
+        p = self.packer.unpack(theta, like)
+        return ms.expected_complete_loglik_grad(self.estep(p), p, self.rs, self.packer,
+                                                self.sigma_prior, self.h_prior)
+
+
+def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> PanelFit:
+    """Fit the premium panel by EM.
+
+    Parameters
+    ----------
+    data : Panel or DataFrame (dates x assets, decimal excess returns per period, NaN missing).
+    spec : ModelSpec (default settings when None).
+    start : Params to start from (a warm start); None uses the moment-based rule.
+    """
+    t0 = time.perf_counter()
+    panel = _as_panel(data)
+    spec = spec or ModelSpec()
+    prob = _Problem(panel, spec)
+    rs = prob.rs
+    p0 = starting_values(prob.Y, rs) if start is None else _check_start(start, prob)
+    floor = ms.VAR_FLOOR * float(np.mean(np.diag(p0.H)))
+    n_free = count_free(rs, prob.Y.shape[1])
+    if n_free == 0:
+        e = prob.estep(p0)
+        outcome = None
+        p, status, message, n_iter = p0, "fixed", "all parameters fixed: filter and smoother only", 1
+        objective, trace = prob.objective(e, p0), ((1, prob.objective(e, p0), e.loglik, 0.0, "fixed"),)
+        loglik = e.loglik
+    else:
+        outcome = run_em(
+            p0, prob.estep,
+            lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
+            prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
+            max_iter=spec.max_iter, time_budget=spec.time_budget,
+            accelerate=spec.acceleration == "squarem")
+        p, status, message, n_iter = outcome.params, outcome.status, outcome.message, outcome.n_estep
+        objective, trace, loglik = outcome.objective, outcome.trace, outcome.estep.loglik
+        status, message = _boundary_status(p, rs, floor, panel.assets, status, message)
+    se, se_note = None, ""
+    want_se = spec.std_errors == "always" or (spec.std_errors == "auto" and n_free <= AUTO_SE_LIMIT)
+    if n_free and want_se:
+        se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure)
+    elif n_free:
+        se_note = f"standard errors skipped ({n_free} free parameters > {AUTO_SE_LIMIT}; std_errors='always' forces them)"
+    if se_note:
+        message = f"{message}; {se_note}"
+    return _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se,
+                   time.perf_counter() - t0)
+
+
+def evaluate(data, params: Params, spec: ModelSpec | None = None) -> PanelFit:
+    """Filter and smooth at given parameters (no estimation): the known-parameters filter."""
+    t0 = time.perf_counter()
+    panel = _as_panel(data)
+    prob = _Problem(panel, spec or ModelSpec())
+    p = _check_start(params, prob)
+    e = prob.estep(p)
+    obj = prob.objective(e, p)
+    return _result(prob, p, None, e.loglik, obj, count_free(prob.rs, p.n_assets), 1, "fixed",
+                   "evaluated at given parameters", ((1, obj, e.loglik, 0.0, "fixed"),), None,
+                   time.perf_counter() - t0)
+
+
+def _check_start(p: Params, prob: _Problem) -> Params:
+    N = prob.Y.shape[1]
+    rs = prob.rs
+    if p.n_assets != N or p.Lambda.shape[1] != rs.k or p.H.shape != (N, N):
+        raise SpecError(f"start parameters are for {p.n_assets} assets and {p.Lambda.shape[1]} "
+                        f"premium factors; the model has {N} and {rs.k}")
+    if rs.structure == "factor" and (p.B is None or p.B.shape[1] != rs.r):
+        raise SpecError("start parameters do not have the model's return-factor structure")
+    if rs.structure != "full" and p.psi is None:
+        raise SpecError("start parameters have a full H; the model needs psi")
+    return p
+
+
+def _boundary_status(p, rs, floor, assets, status, message):
+    notes = []
+    free_q = np.ones(p.n_assets, bool) if rs.fixed_q is None else np.isnan(rs.fixed_q)
+    at_zero = free_q & (p.q <= floor * 1.0001)
+    if at_zero.any():
+        names = ", ".join(np.array(assets)[at_zero][:5])
+        notes.append(f"own premium innovation variance at zero (boundary) for {names}; "
+                     "a premium prior or a fixed premium_vol keeps it away")
+    if rs.max_sigma_diag is not None:
+        capped = np.diag(p.Sigma) >= rs.max_sigma_diag * (1 - 1e-8)
+        if capped.any():
+            names = ", ".join(np.array(assets)[capped][:5])
+            notes.append(f"premium volatility at the upper bound for {names}")
+    if not notes:
+        return status, message
+    return "boundary", f"{message}; " + "; ".join(notes)
+
+
+def covariance_at(res: PanelFit, t: int, kind: str):
+    """(mean, cov, active mask) of the premia at date index ``t`` (one dense pass)."""
+    prob = _Problem(res.panel, res.spec)
+    p = res.params
+    out = dense_smoother(prob.Y, p.Sigma, p.H, prob.s2, init=prob.init, cov_at=(t,), want_estep=False)
+    mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
+    active = ~np.isnan(mean)
+    cov = out.covariances[t][kind][np.ix_(active, active)]
+    return mean[active], cov, active
+
+
+def _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se, elapsed):
+    rs, panel = prob.rs, prob.panel
+    lam = p.Lambda if rs.k else None
+    out = dense_smoother(prob.Y, p.Sigma, p.H, prob.s2, init=prob.init, Lambda=lam, want_estep=False)
+    assets = list(panel.assets)
+    T, N = prob.Y.shape
+    active = ~np.isnan(out.filtered_mean)
+    ti, ai = np.nonzero(active)
+    ret_var = out.predicted_var + prob.s2[:, None] * np.diag(p.H)[None, :]
+    with np.errstate(invalid="ignore"):
+        z = out.innovation / np.sqrt(out.innovation_var)
+    estimates = pd.DataFrame({
+        "date": panel.dates[ti], "asset": np.array(assets, dtype=object)[ai],
+        "filtered_mean": out.filtered_mean[ti, ai], "filtered_std": np.sqrt(out.filtered_var[ti, ai]),
+        "smoothed_mean": out.smoothed_mean[ti, ai], "smoothed_std": np.sqrt(out.smoothed_var[ti, ai]),
+        "predictive_mean": out.predicted_mean[ti, ai], "predictive_std": np.sqrt(ret_var[ti, ai]),
+        "std_innovation": z[ti, ai]})
+    fac = [pd.DataFrame({"date": panel.dates, "factor": j + 1,
+                         "filtered_mean": out.factor_filtered_mean[:, j],
+                         "filtered_std": np.sqrt(out.factor_filtered_var[:, j]),
+                         "smoothed_mean": out.factor_smoothed_mean[:, j],
+                         "smoothed_std": np.sqrt(out.factor_smoothed_var[:, j])}) for j in range(rs.k)]
+    factors = pd.concat(fac, ignore_index=True) if fac else pd.DataFrame(
+        columns=["date", "factor", "filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std"])
+    rows = inference.parameter_rows(assets, rs.k, rs.r, rs.structure)
+    values = inference.parameter_vector(p, rs.structure)
+    parameters = pd.DataFrame(rows, columns=["name", "row", "col"])
+    parameters["value"] = values
+    parameters["std_error"] = np.nan if se is None else se
+    trace_frame = pd.DataFrame(list(trace), columns=["iteration", "objective", "loglik", "elapsed_s", "step"])
+    diag_rows = []
+    for i, a in enumerate(assets):
+        q, lags, pv = inference.ljung_box(z[:, i])
+        diag_rows.append((a, "ljung_box", lags, q, pv))
+    diagnostics = pd.DataFrame(diag_rows, columns=["asset", "statistic", "lags", "value", "pvalue"])
+    return PanelFit(panel=panel, spec=prob.spec, start=start, params=p, k=rs.k, structure=rs.structure,
+                    periods_per_year=rs.ppy, loglik=float(loglik), objective=float(objective),
+                    n_params=int(n_free), n_obs=prob.n_obs, n_iter=int(n_iter),
+                    converged=status in ("converged", "fixed"), status=status, message=message,
+                    elapsed=float(elapsed), estimates=estimates, factors=factors,
+                    parameters=parameters, trace=trace_frame, diagnostics=diagnostics)

@@ -1,0 +1,133 @@
+"""Immutable results: :class:`PanelFit` (a fitted or evaluated model) and :class:`CrossSection`.
+
+Every number is in per-period decimal units (annualising is for presentation).  A ``PanelFit`` holds
+its data (``panel``) explicitly, so cross-sections at any date can be recomputed without storing an
+N x N covariance for every date.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+from panel.data import Panel
+from panel.model.params import Params
+from panel.model.spec import ModelSpec
+
+
+@dataclass(frozen=True, eq=False)
+class CrossSection:
+    """Joint posterior of all premia at one date.
+
+    ``mean`` (n,) and ``cov`` (n, n) over ``assets`` (those active at the date), per period;
+    ``prob_positive[i] = P(mu_i > 0)``; ``prob_greater.loc[i, j] = P(mu_i > mu_j)``.
+    """
+
+    date: pd.Timestamp
+    kind: str
+    assets: tuple[str, ...]
+    mean: np.ndarray
+    cov: np.ndarray
+
+    @property
+    def std(self) -> np.ndarray:
+        return np.sqrt(np.diag(self.cov))
+
+    @property
+    def prob_positive(self) -> np.ndarray:
+        return stats.norm.cdf(self.mean / self.std)
+
+    @property
+    def prob_greater(self) -> pd.DataFrame:
+        d = self.mean[:, None] - self.mean[None, :]
+        v = np.diag(self.cov)[:, None] + np.diag(self.cov)[None, :] - 2.0 * self.cov
+        with np.errstate(divide="ignore", invalid="ignore"):
+            z = d / np.sqrt(np.maximum(v, 0.0))
+        out = stats.norm.cdf(z)
+        np.fill_diagonal(out, np.nan)
+        return pd.DataFrame(out, index=list(self.assets), columns=list(self.assets))
+
+    def table(self) -> pd.DataFrame:
+        """One row per asset: mean, std, P(mu > 0), ranked by mean (highest first)."""
+        frame = pd.DataFrame({"asset": self.assets, "mean": self.mean, "std": self.std,
+                              "prob_positive": self.prob_positive})
+        return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
+
+
+@dataclass(frozen=True, eq=False)
+class PanelFit:
+    """A fitted (or, with status ``fixed``, evaluated) premium panel.  See DEVELOPERS.md for the
+    columns of the long tables.
+
+    Fitted attributes: ``params``, ``loglik``, ``objective`` (log-likelihood plus log prior),
+    ``n_params``, ``aic``, ``bic``, ``n_iter`` (E-steps), ``converged``, ``status``, ``message``,
+    ``elapsed``; tables ``estimates``, ``factors``, ``parameters``, ``trace``, ``diagnostics``.
+    Settings: ``spec`` and ``start`` (warm-start parameters or None); data: ``panel``.
+    """
+
+    panel: Panel
+    spec: ModelSpec
+    start: Params | None
+    params: Params
+    k: int
+    structure: str
+    periods_per_year: int
+    loglik: float
+    objective: float
+    n_params: int
+    n_obs: int
+    n_iter: int
+    converged: bool
+    status: str
+    message: str
+    elapsed: float
+    estimates: pd.DataFrame
+    factors: pd.DataFrame
+    parameters: pd.DataFrame
+    trace: pd.DataFrame
+    diagnostics: pd.DataFrame
+
+    @property
+    def assets(self) -> tuple[str, ...]:
+        return self.panel.assets
+
+    @property
+    def dates(self) -> pd.DatetimeIndex:
+        return self.panel.dates
+
+    @property
+    def aic(self) -> float:
+        return -2.0 * self.loglik + 2.0 * self.n_params
+
+    @property
+    def bic(self) -> float:
+        return -2.0 * self.loglik + self.n_params * np.log(self.n_obs)
+
+    def settings(self) -> dict:
+        """Everything needed to rebuild this run from its dataset (JSON-able)."""
+        return {"spec": self.spec.to_dict(),
+                "start": None if self.start is None else self.start.to_dict(),
+                "dataset_hash": self.panel.hash,
+                "as_of": str(self.dates[-1].date())}
+
+    def tables(self) -> dict[str, pd.DataFrame]:
+        return {"estimates": self.estimates, "factor_paths": self.factors,
+                "parameters": self.parameters, "em_trace": self.trace,
+                "diagnostics": self.diagnostics}
+
+    def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
+        """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
+        from panel.model.fit import covariance_at  # local: fit imports this module
+
+        if kind not in ("filtered", "smoothed"):
+            raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
+        date = pd.Timestamp(date)
+        pos = self.dates.searchsorted(date, side="right") - 1
+        if pos < 0:
+            raise ValueError(f"date {date.date()} is before the first date {self.dates[0].date()}")
+        mean, cov, active = covariance_at(self, int(pos), kind)
+        return CrossSection(date=self.dates[pos], kind=kind, assets=tuple(np.array(self.assets)[active]),
+                            mean=mean, cov=cov)

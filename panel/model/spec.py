@@ -1,0 +1,247 @@
+"""Model specification: what to fit, fixed once and stored with every run.
+
+Notation (used everywhere in riskprem)::
+
+    y_t  = mu_t + eps_t,          eps_t ~ N(0, H_t),  H_t = s_t^2 H     (return shocks)
+    mu_t = mu_{t-1} + w_t,        w_t   ~ N(0, Sigma)                    (premia, local levels)
+    Sigma = Lambda Lambda' + diag(q)                                     (k common premium factors)
+    H     = diag(psi) | B B' + diag(psi) | full                          (return-shock structure)
+
+``y_t`` are excess returns in decimal per period.  User-facing volatilities in a spec are
+**annualised decimals** (0.20 = 20% a year: a per-period variance ``v`` is ``v * ppy`` a year);
+internally everything is per period.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field, fields
+
+RETURN_SHOCKS = ("diagonal", "factor", "full")
+FIXABLE = ("premium_vol", "return_vol")
+
+
+class SpecError(ValueError):
+    """A model specification that cannot be fitted; the message is one line naming the fix."""
+
+
+@dataclass(frozen=True)
+class Prior:
+    """Weakly-informative inverse-Wishart prior on a covariance, as pseudo-observations.
+
+    ``weight`` pseudo-periods whose covariance is ``(vol**2 / ppy) * I``: the M-step target becomes
+    ``(n S + weight v I) / (n + weight)``.  ``vol`` is annualised, decimal.
+    """
+
+    vol: float
+    weight: float
+
+
+@dataclass(frozen=True)
+class InitialPremium:
+    """Informative prior for each asset's premium at its first observation (instead of diffuse).
+
+    ``mean`` and ``vol`` are annualised decimals (mean 0.05 = 5% a year).
+    """
+
+    mean: float
+    vol: float
+
+
+@dataclass(frozen=True)
+class VolScale:
+    """Ex-ante volatility scale ``s_t`` (``H_t = s_t^2 H``).
+
+    ``kind="ewma"``: ``s_t^2`` is the exponentially weighted mean (half-life ``half_life`` periods)
+    of the cross-sectional mean squared return over dates before t, divided by the expanding mean of
+    the same quantity before t (past data only, so a vintage never uses its future).
+    ``kind="series"``: ``values`` is a user series of ``s_t`` (one positive value per date).
+    """
+
+    kind: str
+    half_life: float | None = None
+    values: tuple[float, ...] | None = None
+
+
+def _freeze(mapping) -> tuple[tuple[str, float], ...]:
+    return tuple(sorted((str(k), float(v)) for k, v in dict(mapping or {}).items()))
+
+
+@dataclass(frozen=True)
+class ModelSpec:
+    """Settings of a fit.  The constructor only stores them; :meth:`resolve` validates against data.
+
+    Parameters
+    ----------
+    premium_factors : int or None
+        ``k`` common premium factors, 0..5; None -> 1 when N >= 3, else 0.
+    return_shocks : {"diagonal", "factor", "full"} or None
+        Structure of ``H``; None -> "factor" when identifiable with ``return_factors``, else
+        "full" for N = 2, "diagonal" for N = 1.
+    return_factors : int
+        ``r`` for ``return_shocks="factor"``.
+    periods_per_year : int or None
+        None -> the panel's.
+    vol_scale : VolScale or None
+    fixed : mapping
+        Parameters held fixed, annualised decimal volatilities: ``premium_vol`` (every asset's own
+        premium innovation volatility sqrt(q_i ppy)) or ``premium_vol:ASSET``; ``return_vol`` (the
+        return-shock volatility sqrt(psi_i ppy); diagonal or factor H) or ``return_vol:ASSET``.
+    max_premium_vol : float or None
+        Upper bound on each asset's total premium innovation volatility sqrt(Sigma_ii ppy).
+    premium_prior, return_prior : Prior or None
+        MAP-EM priors on ``Sigma`` and ``H``.
+    initial_premium : InitialPremium or None
+        None -> exact diffuse start of each level at its first observation.
+    tol : float
+        Stop when the relative change of the objective per accepted step is below ``tol`` ...
+    param_tol : float
+        ... and the largest parameter change (transformed scale) is below ``param_tol``.
+    max_iter : int
+        Maximum EM iterations (E-steps).
+    time_budget : float or None
+        Seconds; a fit stopped by it has status ``time_budget``.
+    acceleration : {"squarem", "none"}
+    std_errors : {"auto", "always", "never"}
+        "auto" computes them when the free parameters number at most 150.
+    method : str
+        E-step path: "auto" or "dense" (the reference path).
+    """
+
+    premium_factors: int | None = None
+    return_shocks: str | None = None
+    return_factors: int = 1
+    periods_per_year: int | None = None
+    vol_scale: VolScale | None = None
+    fixed: tuple[tuple[str, float], ...] = field(default=())
+    max_premium_vol: float | None = None
+    premium_prior: Prior | None = None
+    return_prior: Prior | None = None
+    initial_premium: InitialPremium | None = None
+    tol: float = 1e-10
+    param_tol: float = 1e-6
+    max_iter: int = 5000
+    time_budget: float | None = None
+    acceleration: str = "squarem"
+    std_errors: str = "auto"
+    method: str = "auto"
+
+    def __post_init__(self):
+        object.__setattr__(self, "fixed", _freeze(self.fixed))
+
+    # ---- serialisation (the store records to_dict(); reproduce rebuilds with from_dict) ----
+    def to_dict(self) -> dict:
+        out = asdict(self)
+        out["fixed"] = dict(self.fixed)
+        return out
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ModelSpec":
+        data = dict(data)
+        unknown = set(data) - {f.name for f in fields(cls)}
+        if unknown:
+            raise SpecError(f"unknown model settings {sorted(unknown)}; remove them")
+        for key, kind in (("premium_prior", Prior), ("return_prior", Prior),
+                          ("initial_premium", InitialPremium), ("vol_scale", VolScale)):
+            if data.get(key) is not None and not isinstance(data[key], kind):
+                value = dict(data[key])
+                if kind is VolScale and value.get("values") is not None:
+                    value["values"] = tuple(float(v) for v in value["values"])
+                data[key] = kind(**value)
+        return cls(**data)
+
+    # ---- validation against the data ----
+    def resolve(self, n_assets: int, ppy_panel: int, n_dates: int, assets: tuple[str, ...]) -> "ResolvedSpec":
+        """Fill defaults from the data and validate; raises :class:`SpecError` with one line."""
+        N = n_assets
+        k = self.premium_factors
+        if k is None:
+            k = 1 if N >= 3 else 0
+        if not (0 <= k <= 5):
+            raise SpecError(f"premium_factors must be 0..5, got {k}")
+        if k > 0 and not _identifiable(N, k):
+            raise SpecError(f"{k} common premium factor(s) are not identified with {N} assets; "
+                            f"use fewer premium factors (0 for independent local levels)")
+        r = int(self.return_factors)
+        structure = self.return_shocks
+        if structure is None:
+            structure = "factor" if _identifiable(N, r) and r >= 1 else ("full" if N == 2 else "diagonal")
+        if structure not in RETURN_SHOCKS:
+            raise SpecError(f"return_shocks must be one of {', '.join(RETURN_SHOCKS)}, got {structure!r}")
+        if structure == "factor":
+            if r < 1:
+                raise SpecError(f"return_factors must be >= 1 with factor return shocks, got {r}")
+            if not _identifiable(N, r):
+                raise SpecError(f"{r} return factor(s) are not identified with {N} assets; "
+                                f"use return_shocks='full' or 'diagonal', or fewer return factors")
+        if N == 1:
+            structure = "diagonal"  # with one asset every structure is the same scalar variance
+        ppy = int(self.periods_per_year or ppy_panel)
+        if ppy < 1:
+            raise SpecError(f"periods_per_year must be a positive integer, got {ppy}")
+        fixed_q, fixed_psi = _per_asset_fixes(self.fixed, assets, ppy)
+        if fixed_psi is not None and structure == "full":
+            raise SpecError("return_vol can be fixed only with return_shocks='diagonal' or 'factor'")
+        for name, value in (("max_premium_vol", self.max_premium_vol),):
+            if value is not None and not (value > 0 and math.isfinite(value)):
+                raise SpecError(f"{name} must be a positive annualised volatility, got {value}")
+        for name, prior in (("premium_prior", self.premium_prior), ("return_prior", self.return_prior)):
+            if prior is not None and not (prior.vol > 0 and prior.weight > 0):
+                raise SpecError(f"{name} needs a positive vol and weight, got {prior}")
+        if self.initial_premium is not None and not self.initial_premium.vol > 0:
+            raise SpecError("initial_premium vol must be positive")
+        if self.vol_scale is not None:
+            vs = self.vol_scale
+            if vs.kind == "ewma" and not (vs.half_life and vs.half_life > 0):
+                raise SpecError("vol_scale ewma needs a positive half_life in periods")
+            if vs.kind == "series" and (vs.values is None or len(vs.values) != n_dates
+                                        or min(vs.values) <= 0):
+                raise SpecError(f"vol_scale series needs one positive value per date ({n_dates})")
+            if vs.kind not in ("ewma", "series"):
+                raise SpecError(f"vol_scale kind must be 'ewma' or 'series', got {vs.kind!r}")
+        if self.acceleration not in ("squarem", "none"):
+            raise SpecError(f"acceleration must be 'squarem' or 'none', got {self.acceleration!r}")
+        if self.std_errors not in ("auto", "always", "never"):
+            raise SpecError(f"std_errors must be auto, always or never, got {self.std_errors!r}")
+        if self.max_iter < 1 or not self.tol > 0:
+            raise SpecError("max_iter must be >= 1 and tol > 0")
+        bound = None if self.max_premium_vol is None else self.max_premium_vol ** 2 / ppy
+        return ResolvedSpec(k=k, structure=structure, r=r if structure == "factor" else 0, ppy=ppy,
+                            fixed_q=fixed_q, fixed_psi=fixed_psi, max_sigma_diag=bound)
+
+
+@dataclass(frozen=True)
+class ResolvedSpec:
+    """A spec with data-dependent defaults filled in (per-period units)."""
+
+    k: int
+    structure: str
+    r: int
+    ppy: int
+    fixed_q: tuple[float, ...] | None      # per asset per-period variance, NaN = free
+    fixed_psi: tuple[float, ...] | None
+    max_sigma_diag: float | None
+
+
+def _identifiable(n: int, m: int) -> bool:
+    """Ledermann bound for an m-factor covariance of n variables: (n - m)^2 >= n + m."""
+    return m >= 1 and (n - m) ** 2 >= n + m
+
+
+def _per_asset_fixes(fixed, assets, ppy):
+    out = {"premium_vol": None, "return_vol": None}
+    for key, value in fixed:
+        name, _, asset = key.partition(":")
+        if name not in FIXABLE:
+            raise SpecError(f"cannot fix {key!r}; fixable: premium_vol, return_vol (optionally NAME:ASSET)")
+        if not (value >= 0 and math.isfinite(value)):
+            raise SpecError(f"fixed {key} must be a non-negative annualised volatility, got {value}")
+        if asset and asset not in assets:
+            raise SpecError(f"fixed {key}: no asset {asset!r} in the panel")
+        arr = out[name] or [math.nan] * len(assets)
+        for i, a in enumerate(assets):
+            if not asset or a == asset:
+                arr[i] = value ** 2 / ppy
+        out[name] = arr
+    q, psi = out["premium_vol"], out["return_vol"]
+    return (tuple(q) if q else None), (tuple(psi) if psi else None)
