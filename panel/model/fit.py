@@ -12,7 +12,6 @@ import pandas as pd
 
 from panel.data import Panel
 from panel.kalman import paths
-from panel.kalman.dense import dense_smoother
 from panel.model import inference, mstep as ms
 from panel.model.em import run_em
 from panel.model.params import Packer, Params, count_free
@@ -165,7 +164,7 @@ def covariance_at(res: PanelFit, t: int, kind: str):
     """(mean, cov, active mask) of the premia at date index ``t`` (one dense pass)."""
     prob = _Problem(res.panel, res.spec)
     p = res.params
-    out = dense_smoother(prob.Y, p.Sigma, p.H, prob.s2, init=prob.init, cov_at=(t,), want_estep=False)
+    out = paths.report(prob.Y, p.Sigma, p.H, prob.s2, prob.init, cov_at=(t,), method=res.spec.method)
     mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
     active = ~np.isnan(mean)
     cov = out.covariances[t][kind][np.ix_(active, active)]
@@ -175,7 +174,7 @@ def covariance_at(res: PanelFit, t: int, kind: str):
 def _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se, elapsed):
     rs, panel = prob.rs, prob.panel
     lam = p.Lambda if rs.k else None
-    out = dense_smoother(prob.Y, p.Sigma, p.H, prob.s2, init=prob.init, Lambda=lam, want_estep=False)
+    out = paths.report(prob.Y, p.Sigma, p.H, prob.s2, prob.init, Lambda=lam, method=prob.spec.method)
     assets = list(panel.assets)
     T, N = prob.Y.shape
     active = ~np.isnan(out.filtered_mean)
