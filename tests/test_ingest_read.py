@@ -251,3 +251,22 @@ def test_write_panel_refuses_bad_targets(tmp_path):
         write_panel(panel, tmp_path / "x.xlsx")
     with pytest.raises(IngestError, match="not 'wide' or 'long'"):
         write_panel(panel, tmp_path / "x.csv", layout="tall")
+
+
+def test_long_file_with_a_rate_column(tmp_path):
+    wide = (DATA / "total_rf_column.csv").read_text().splitlines()
+    header = wide[0].split(",")
+    rows = ["date,asset,value,RF"]
+    for line in wide[1:]:
+        cells = line.split(",")
+        rows += [f"{cells[0]},{a},{v},{cells[-1]}" for a, v in zip(header[1:-1], cells[1:-1])]
+    path = tmp_path / "long_rf.csv"
+    path.write_text("\n".join(rows) + "\n")
+    panel = read_panel(path, min_obs=3, total_returns=True, risk_free="RF")
+    assert panel.meta["layout"] == "long"
+    assert panel.hash == read("total_rf_column.csv", total_returns=True, risk_free="RF").hash
+    rows[5] = rows[5].rsplit(",", 1)[0] + ",0.0019"  # February rate of the 2nd sleeve differs
+    path.write_text("\n".join(rows) + "\n")
+    with pytest.raises(IngestError, match="line 6, column 'RF': risk-free rate '0.0019' differs "
+                                          "from '0.0010' \\(line 5\\)"):
+        read_panel(path, min_obs=3, total_returns=True, risk_free="RF")

@@ -45,6 +45,7 @@ def test_period_starts_label_their_own_period():
 
 
 def test_gap_limits_are_exact():
+    assert MAX_GAP == {"B": 10, "W": 4, "M": 3, "Q": 2, "A": 2}  # the documented limits
     ends = pd.date_range("2015-01-31", periods=40, freq="ME")
     for run in (MAX_GAP["M"], MAX_GAP["M"] + 1):
         dates = ends.delete(range(10, 10 + run)).values.astype("datetime64[D]")

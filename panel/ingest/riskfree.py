@@ -108,8 +108,10 @@ def rates_on_grid(cells: RateCells, fitted: Fitted, decimal: np.ndarray,
     for k, period in zip(present.tolist(), periods.tolist()):
         if period in out and out[period] != decimal[k]:
             other = first_at[period]
-            raise IngestError(f"{cells.where(k)}: risk-free rate {decimal[k]!r} differs from "
-                              f"{out[period]!r} ({cells.table.where(int(cells.row[other]))}) for "
+            raws = cells.table.column(cells.column)
+            raise IngestError(f"{cells.where(k)}: risk-free rate {shown(raws[cells.row[k]])} "
+                              f"differs from {shown(raws[cells.row[other]])} "
+                              f"({cells.table.where(int(cells.row[other]))}) for "
                               f"the {grid.unit()} ending {grid.ends([period])[0]}; give one rate "
                               "per period")
         out.setdefault(period, float(decimal[k]))
