@@ -1,0 +1,247 @@
+"""Schema migrations: numbered SQL files in the top-level ``migrations/`` folder, applied in order.
+
+A file ``NNNN_words.sql`` brings the store from version ``NNNN - 1`` to ``NNNN``.  Each file runs in
+ONE transaction together with its ``schema_version`` row, so a store is always at a whole version.
+Files hold portable SQL (DuckDB and PostgreSQL); the runner drops ``--`` comment lines, splits on
+semicolons and, on PostgreSQL only, reads the type word ``JSON`` as ``JSONB``.  A version whose data
+change portable SQL cannot express (e.g. a hash) registers a Python step in ``_AFTER``; it runs in the
+same transaction right after the file.
+
+Why a small runner instead of Alembic: Alembic needs dialect glue for DuckDB, and its autogenerate
+cannot work because schema read-back through SQLAlchemy's inspector is incomplete for DuckDB; plain
+numbered files are easy to review and run unchanged on both databases.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Callable
+
+from sqlalchemy import Boolean, Date, DateTime, Double, Integer, BigInteger, JSON, String, func, select, text
+from sqlalchemy.engine import Connection, Engine
+
+from panel.store import schema
+from panel.store.environment import backfill_key, utc_now
+from panel.store.errors import StoreError
+from panel.store.resources import resource_dir
+
+if TYPE_CHECKING:  # pragma: no cover
+    from panel.store.connection import Store
+
+_FILE = re.compile(r"^(\d{4})_([a-z0-9_]+)\.sql$")
+
+
+@dataclass(frozen=True)
+class Migration:
+    version: int
+    description: str
+    path: Path
+
+    def statements(self, dialect: str) -> list[str]:
+        """The file's statements for ``dialect`` (``"duckdb"``, ``"postgresql"``, ...)."""
+        lines = [line for line in self.path.read_text(encoding="utf-8").splitlines()
+                 if not line.lstrip().startswith("--")]
+        body = "\n".join(lines)
+        if dialect == "postgresql":
+            body = re.sub(r"\bJSON\b", "JSONB", body)
+        return [part.strip() for part in body.split(";") if part.strip()]
+
+
+def migrations() -> list[Migration]:
+    """All migration files, in version order; their numbers must run 1, 2, 3, ... without gaps."""
+    folder = resource_dir("migrations")
+    found = []
+    for path in sorted(folder.glob("*.sql")):
+        match = _FILE.match(path.name)
+        if match is None:
+            raise StoreError(f"migration file {path} is not named NNNN_words.sql; rename it")
+        found.append(Migration(int(match.group(1)), match.group(2).replace("_", " "), path))
+    numbers = [m.version for m in found]
+    if numbers != list(range(1, len(found) + 1)):
+        raise StoreError(f"migration files in {folder} are numbered {numbers}, not 1..{len(found)}; "
+                         "fix the numbering")
+    return found
+
+
+def head_version() -> int:
+    """The newest version the migration files reach."""
+    return migrations()[-1].version
+
+
+# ---------------------------------------------------------------------------------------------
+# reading the live catalog (information_schema works on DuckDB and PostgreSQL)
+
+_TABLES = text("SELECT table_name FROM information_schema.tables "
+               "WHERE table_schema = current_schema() AND table_catalog = current_database()")
+_COLUMNS = text("SELECT table_name, column_name, data_type, is_nullable, ordinal_position "
+                "FROM information_schema.columns "
+                "WHERE table_schema = current_schema() AND table_catalog = current_database() "
+                "ORDER BY table_name, ordinal_position")
+_PRIMARY_KEYS = text(
+    "SELECT tc.table_name, kcu.column_name, kcu.ordinal_position "
+    "FROM information_schema.table_constraints tc "
+    "JOIN information_schema.key_column_usage kcu "
+    "  ON kcu.constraint_name = tc.constraint_name AND kcu.table_name = tc.table_name "
+    "  AND kcu.table_schema = tc.table_schema "
+    "WHERE tc.constraint_type = 'PRIMARY KEY' AND tc.table_schema = current_schema() "
+    "  AND tc.table_catalog = current_database() "
+    "ORDER BY tc.table_name, kcu.ordinal_position")
+
+
+def live_tables(conn: Connection) -> set[str]:
+    return {row[0] for row in conn.execute(_TABLES)}
+
+
+def current_version(conn: Connection) -> int | None:
+    """Schema version of the connected database: 0 when it has no tables, None when it has tables
+    but is not a riskprem store."""
+    tables = live_tables(conn)
+    if "schema_version" in tables:
+        return int(conn.execute(select(func.coalesce(func.max(schema.schema_version.c.version), 0)))
+                   .scalar_one())
+    return 0 if not tables else None
+
+
+_FAMILIES = {
+    "bigint": "bigint", "int8": "bigint",
+    "integer": "integer", "int4": "integer", "int": "integer",
+    "double": "double", "double precision": "double", "float8": "double",
+    "varchar": "text", "character varying": "text", "text": "text",
+    "boolean": "boolean", "date": "date",
+    "timestamp": "timestamp", "timestamp without time zone": "timestamp",
+    "json": "json", "jsonb": "json",
+}
+
+
+def _family_of(column_type) -> str:
+    for kind, family in ((BigInteger, "bigint"), (Integer, "integer"), (Double, "double"),
+                         (Boolean, "boolean"), (DateTime, "timestamp"), (Date, "date"),
+                         (JSON, "json"), (String, "text")):
+        if isinstance(column_type, kind):
+            return family
+    return type(column_type).__name__.lower()
+
+
+def schema_drift(store: "Store") -> list[str]:
+    """Differences between the store's tables and ``schema.metadata`` (empty = none): column names
+    and order, type family, nullability and primary keys."""
+    with store.engine.connect() as conn:
+        return _drift(conn)
+
+
+def _drift(conn: Connection) -> list[str]:
+    columns: dict[str, list[tuple[str, str, bool]]] = {}
+    for table, name, data_type, nullable, _ in conn.execute(_COLUMNS):
+        family = _FAMILIES.get(str(data_type).lower(), str(data_type).lower())
+        columns.setdefault(table, []).append((name, family, nullable == "YES"))
+    keys: dict[str, list[str]] = {}
+    for table, name, _ in conn.execute(_PRIMARY_KEYS):
+        keys.setdefault(table, []).append(name)
+    problems = []
+    for table in schema.metadata.sorted_tables:
+        want = [(c.name, _family_of(c.type), bool(c.nullable)) for c in table.columns]
+        have = columns.get(table.name)
+        if have is None:
+            problems.append(f"table {table.name} is missing")
+            continue
+        if have != want:
+            problems.append(f"table {table.name}: store has {have}, schema.py has {want}")
+        want_key = [c.name for c in table.primary_key.columns]
+        if keys.get(table.name, []) != want_key:
+            problems.append(f"table {table.name}: primary key {keys.get(table.name, [])} != {want_key}")
+    extra = set(columns) - set(schema.metadata.tables)
+    problems.extend(f"table {name} is not in schema.py" for name in sorted(extra))
+    return problems
+
+
+# ---------------------------------------------------------------------------------------------
+# applying migrations
+
+def _fill_backfill_keys(conn: Connection) -> None:
+    runs = schema.runs
+    rows = conn.execute(select(runs.c.id, runs.c.dataset_hash, runs.c.settings)).all()
+    for run_id, dataset_hash, settings in rows:
+        conn.execute(runs.update().where(runs.c.id == run_id)
+                     .values(backfill_key=backfill_key(dataset_hash, settings or {})))
+
+
+_AFTER: dict[int, Callable[[Connection], None]] = {2: _fill_backfill_keys}
+
+
+def _creation_meta(conn: Connection) -> None:
+    from panel.store.connection import engine_facts
+
+    import panel
+
+    facts = {"created_utc": utc_now().isoformat(timespec="seconds"), "created_by": f"riskprem {panel.__version__}",
+             **{f"created_{k}": v for k, v in engine_facts(conn).items()}}
+    conn.execute(schema.store_meta.insert(), [{"key": k, "value": v} for k, v in facts.items()])
+
+
+def apply_migrations(engine: Engine, target: int | None = None) -> list[int]:
+    """Bring the database behind ``engine`` to ``target`` (default: the newest); returns the
+    versions applied.  Each version commits on its own, with its ``schema_version`` row."""
+    todo = migrations()
+    target = todo[-1].version if target is None else target
+    with engine.connect() as conn:
+        start = current_version(conn)
+    if start is None:
+        raise StoreError(f"{engine.url.database or engine.url} is not a riskprem store (it has tables "
+                         "but no schema_version); point the store option at another file")
+    applied = []
+    for migration in todo:
+        if not start < migration.version <= target:
+            continue
+        with engine.begin() as conn:
+            for statement in migration.statements(engine.dialect.name):
+                conn.execute(text(statement))
+            if migration.version in _AFTER:
+                _AFTER[migration.version](conn)
+            conn.execute(schema.schema_version.insert().values(
+                version=migration.version, applied_utc=utc_now(), description=migration.description))
+            if migration.version == 1:
+                _creation_meta(conn)
+        applied.append(migration.version)
+    return applied
+
+
+def upgrade(store: "Store", target: int | None = None) -> list[int]:
+    """Migrate an existing store in place to ``target`` (default: this riskprem's schema); returns
+    the versions applied (empty when already current).  Existing rows are kept."""
+    store.require_writable("upgrade")
+    head = head_version()
+    target = head if target is None else target
+    if store.schema_version > head:
+        raise StoreError(store.newer_message(head))
+    applied = apply_migrations(store.engine, target)
+    if applied:
+        with store.engine.begin() as conn:
+            meta = schema.store_meta
+            conn.execute(meta.delete().where(meta.c.key == "upgraded_utc"))
+            conn.execute(meta.insert().values(key="upgraded_utc", value=utc_now().isoformat(timespec="seconds")))
+            store.schema_version = current_version(conn)
+    return applied
+
+
+def store_info(store: "Store") -> dict:
+    """Facts about a store: location, schema version (and this riskprem's), DuckDB library and
+    storage version, file size in bytes (database plus write-ahead log), row count per table, and the
+    ``store_meta`` entries recorded at creation and upgrade."""
+    from panel.store.connection import engine_facts
+
+    with store.engine.connect() as conn:
+        present = live_tables(conn)
+        counts = {t.name: int(conn.execute(select(func.count()).select_from(t)).scalar_one())
+                  for t in schema.metadata.sorted_tables if t.name in present}
+        meta = ({k: v for k, v in conn.execute(select(schema.store_meta.c.key, schema.store_meta.c.value))}
+                if "store_meta" in present else {})
+        facts = engine_facts(conn)
+        version = current_version(conn)
+    size = None
+    if store.path is not None:
+        size = sum(p.stat().st_size for p in (store.path, Path(str(store.path) + ".wal")) if p.exists())
+    return {"location": store.display, "dialect": store.engine.dialect.name, "schema_version": version,
+            "code_schema_version": head_version(), **facts, "file_size": size, "counts": counts,
+            "meta": meta}
