@@ -1,10 +1,17 @@
-"""The EM loop: generalised EM steps, SQUAREM acceleration, stopping rules and the trace.
+"""The EM loop: generalised EM steps, SQUAREM acceleration, a quasi-Newton finish, stopping rules
+and the trace.
 
 SQUAREM (Varadhan & Roland 2008, scheme S3): from ``theta0`` take two EM steps ``theta1, theta2``,
 extrapolate ``theta0 - 2 a r + a^2 v`` with ``r = theta1 - theta0``, ``v = theta2 - 2 theta1 +
-theta0`` and ``a = min(-1, -|r| / |v|)``, in the packed scale (log variances); the extrapolated
-point is accepted only if its objective is at least that of ``theta2``.  Every accepted step
-therefore has an objective no lower than the one before (monotone trace).
+theta0`` and ``a = min(-1, -|r| / |v|)``, in the packed scale (log variances), halving the step
+towards ``a = -1`` while the objective is below that of ``theta2``.
+
+EM crawls near the optimum for variance parameters, so ``acceleration="quasi-newton"`` (the
+default) hands over, once EM's relative progress per step falls below ``HANDOVER``, to L-BFGS-B on
+the exact log-likelihood with the score that each E-step gives by Fisher's identity; log variances
+are bounded below by the variance floor, so a boundary solution shows up as a variance at the floor.
+
+Only steps that do not lower the objective are accepted: the trace is monotone.
 """
 
 from __future__ import annotations
@@ -18,6 +25,8 @@ from panel.model.params import Packer, Params
 
 #: Allowed fall of the objective per step, relative — rounding noise, not a decrease.
 NOISE = 1e-11
+#: EM relative progress per step below which the quasi-Newton finish takes over.
+HANDOVER = 1e-6
 
 
 @dataclass(frozen=True)
@@ -32,11 +41,13 @@ class EMOutcome:
 
 
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
-           max_iter: int, time_budget: float | None, accelerate: bool) -> EMOutcome:
+           max_iter: int, time_budget: float | None, accelerate: bool, score=None,
+           bounds=None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
-    ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``.
-    ``max_iter`` bounds the number of E-steps.
+    ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
+    ``score(e, p) -> (n_theta,)`` enables the quasi-Newton finish, within ``bounds`` (a list of
+    (low, high) per packed parameter).  ``max_iter`` bounds the number of E-steps.
     """
     start = time.perf_counter()
     p, e = p0, estep(p0)
@@ -75,17 +86,19 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
                 t0, t1, t2 = packer.pack(p), packer.pack(p1), packer.pack(p2)
                 r, v = t1 - t0, t2 - 2.0 * t1 + t0
                 nv = np.linalg.norm(v)
-                if nv > 0 and n < max_iter:
-                    a = min(-1.0, -np.linalg.norm(r) / nv)
+                a = min(-1.0, -np.linalg.norm(r) / nv) if nv > 0 else -1.0
+                while a < -1.01 and n < max_iter:
                     try:
                         pe = packer.unpack(t0 - 2.0 * a * r + a * a * v, p2)
                         ee = estep(pe)
                         oe = objective(ee, pe)
-                        n += 1
-                        if np.isfinite(oe) and oe >= o2:
-                            cand, step = (pe, ee, oe), "squarem"
                     except (np.linalg.LinAlgError, ValueError, FloatingPointError):
-                        pass  # extrapolated point not admissible: keep the EM step
+                        oe = -np.inf  # extrapolated point not admissible
+                    n += 1
+                    if np.isfinite(oe) and oe >= o2:
+                        cand, step = (pe, ee, oe), "squarem"
+                        break
+                    a = 0.5 * (a - 1.0)
         p_new, e_new, o_new = cand
         dtheta = np.max(np.abs(packer.pack(p_new) - packer.pack(p)), initial=0.0)
         rel = abs(o_new - obj) / max(1.0, abs(obj))
@@ -94,5 +107,55 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
         if rel < tol and dtheta < param_tol:
             status, message = "converged", f"converged after {n} E-steps"
             break
+        if score is not None and rel < HANDOVER:
+            remaining = None if time_budget is None else time_budget - elapsed()
+            p, e, obj, n, status, message = _quasi_newton(
+                p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining, tol,
+                trace, elapsed)
+            break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
                      trace=tuple(trace))
+
+
+class _OutOfTime(Exception):
+    pass
+
+
+def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left, tol,
+                  trace, elapsed):
+    """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated."""
+    from scipy import optimize
+
+    best = {"p": p, "e": e, "obj": obj}
+    count = {"n": n}
+    t_start = elapsed()
+
+    def f(theta):
+        if count["n"] >= max_iter:
+            raise _OutOfTime("max_iter")
+        if time_left is not None and elapsed() - t_start > time_left:
+            raise _OutOfTime("time_budget")
+        pp = packer.unpack(theta, p)
+        ee = estep(pp)
+        oo = objective(ee, pp)
+        count["n"] += 1
+        if oo > best["obj"]:
+            best.update(p=pp, e=ee, obj=oo)
+            trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
+        return -oo, -score(ee, pp)
+
+    scale = max(1.0, abs(obj))
+    try:
+        res = optimize.minimize(lambda th: tuple(v / scale for v in f(th)), packer.pack(p), jac=True,
+                                method="L-BFGS-B", bounds=bounds,
+                                options={"maxfun": max(1, max_iter - n), "ftol": 1e-15, "gtol": 1e-9,
+                                         "maxcor": 20})
+        if res.success:
+            status, message = "converged", f"converged after {count['n']} E-steps (quasi-Newton finish)"
+        else:
+            status, message = "max_iter", f"quasi-Newton finish stopped: {res.message}"
+    except _OutOfTime as stop:
+        status = str(stop)
+        message = (f"stopped after {count['n']} E-steps without meeting the tolerance"
+                   if status == "max_iter" else "stopped by the time budget")
+    return best["p"], best["e"], best["obj"], count["n"], status, message

@@ -100,7 +100,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> Pan
             lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
             prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
             max_iter=spec.max_iter, time_budget=spec.time_budget,
-            accelerate=spec.acceleration == "squarem")
+            accelerate=spec.acceleration != "none", **_quasi_newton_setup(prob, floor))
         p, status, message, n_iter = outcome.params, outcome.status, outcome.message, outcome.n_estep
         objective, trace, loglik = outcome.objective, outcome.trace, outcome.estep.loglik
         status, message = _boundary_status(p, rs, floor, panel.assets, status, message)
@@ -114,6 +114,31 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> Pan
         message = f"{message}; {se_note}"
     return _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se,
                    time.perf_counter() - t0)
+
+
+def _quasi_newton_setup(prob: _Problem, floor: float) -> dict:
+    """Score and box bounds for the quasi-Newton finish (none when a bound is not a box)."""
+    rs = prob.rs
+    if prob.spec.acceleration != "quasi-newton" or (rs.max_sigma_diag is not None and rs.k > 0):
+        return {}
+    logvar = prob.packer.log_variance_mask()
+    n_q = int(prob.packer.free_q.sum())
+    q_slice = slice(int(prob.packer.lam_free.sum()), int(prob.packer.lam_free.sum()) + n_q)
+    low = np.where(logvar, np.log(floor), -np.inf)
+    if rs.structure == "full":  # log Cholesky diagonal: half the log variance
+        chol = np.zeros(logvar.size, bool)
+        chol[q_slice.stop:] = logvar[q_slice.stop:]
+        low[chol] = 0.5 * np.log(floor)
+    high = np.full(logvar.size, np.inf)
+    if rs.max_sigma_diag is not None:
+        high[q_slice] = np.log(rs.max_sigma_diag)
+    bounds = [(None if not np.isfinite(lo) else lo, None if not np.isfinite(hi) else hi)
+              for lo, hi in zip(low, high)]
+
+    def score(e, p):
+        return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
+
+    return {"score": score, "bounds": bounds}
 
 
 def evaluate(data, params: Params, spec: ModelSpec | None = None) -> PanelFit:

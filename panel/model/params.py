@@ -101,6 +101,18 @@ class Packer:
         self.lam_free = np.tril(np.ones((n_assets, rs.k), bool))
         self.b_free = np.tril(np.ones((n_assets, rs.r), bool))
 
+    def log_variance_mask(self) -> np.ndarray:
+        """Which packed entries are log variances (for full H: log Cholesky diagonals)."""
+        parts = [np.zeros(int(self.lam_free.sum()), bool), np.ones(int(self.free_q.sum()), bool)]
+        if self.rs.structure == "full":
+            rows, cols = self.tril
+            parts.append(rows == cols)
+        else:
+            if self.rs.structure == "factor":
+                parts.append(np.zeros(int(self.b_free.sum()), bool))
+            parts.append(np.ones(int(self.free_psi.sum()), bool))
+        return np.concatenate(parts)
+
     def pack(self, p: Params) -> np.ndarray:
         parts = [p.Lambda[self.lam_free], np.log(p.q[self.free_q])]
         if self.rs.structure == "full":

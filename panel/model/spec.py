@@ -101,7 +101,9 @@ class ModelSpec:
         Maximum EM iterations (E-steps).
     time_budget : float or None
         Seconds; a fit stopped by it has status ``time_budget``.
-    acceleration : {"squarem", "none"}
+    acceleration : {"quasi-newton", "squarem", "none"}
+        "quasi-newton": SQUAREM-accelerated EM, then L-BFGS-B with the Fisher-identity score once EM
+        slows down; "squarem": EM with SQUAREM only; "none": plain EM.
     std_errors : {"auto", "always", "never"}
         "auto" computes them when the free parameters number at most 150.
     method : str
@@ -122,7 +124,7 @@ class ModelSpec:
     param_tol: float = 1e-6
     max_iter: int = 5000
     time_budget: float | None = None
-    acceleration: str = "squarem"
+    acceleration: str = "quasi-newton"
     std_errors: str = "auto"
     method: str = "auto"
 
@@ -199,8 +201,8 @@ class ModelSpec:
                 raise SpecError(f"vol_scale series needs one positive value per date ({n_dates})")
             if vs.kind not in ("ewma", "series"):
                 raise SpecError(f"vol_scale kind must be 'ewma' or 'series', got {vs.kind!r}")
-        if self.acceleration not in ("squarem", "none"):
-            raise SpecError(f"acceleration must be 'squarem' or 'none', got {self.acceleration!r}")
+        if self.acceleration not in ("quasi-newton", "squarem", "none"):
+            raise SpecError(f"acceleration must be quasi-newton, squarem or none, got {self.acceleration!r}")
         if self.std_errors not in ("auto", "always", "never"):
             raise SpecError(f"std_errors must be auto, always or never, got {self.std_errors!r}")
         if self.max_iter < 1 or not self.tol > 0:
