@@ -19,6 +19,7 @@ This path is O(T (k + N)^3); it is the oracle that every faster path is checked 
 from __future__ import annotations
 
 from collections import defaultdict
+from dataclasses import dataclass
 
 import numpy as np
 from scipy import linalg
@@ -68,20 +69,63 @@ def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(
     """
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape
-    Sigma = np.asarray(Sigma, dtype=float)
-    H = np.asarray(H, dtype=float)
     s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
-    k = 0 if Lambda is None else Lambda.shape[1]
-    obs = ~np.isnan(Y)
-    entry = first_observations(Y)
+    flt = dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda)
+    out = _report_arrays(T, N, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
+    return _smooth(Y, ~np.isnan(Y), s2, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp,
+                   flt.loglik, flt.innov, flt.innov_var, out, cov_at=set(cov_at),
+                   want_estep=want_estep)
 
-    # Joint innovation covariance of (f, mu): factor shocks drive the premia through Lambda.
+
+def joint_innovation_cov(Sigma, Lambda=None) -> np.ndarray:
+    """(k+N, k+N) innovation covariance of the state ``(f, mu)``: ``[[I, Lambda'], [Lambda, Sigma]]``
+    (factor shocks drive the premia through the loadings)."""
+    N = Sigma.shape[0]
+    k = 0 if Lambda is None else Lambda.shape[1]
     Q = np.zeros((k + N, k + N))
     Q[:k, :k] = np.eye(k)
     Q[k:, k:] = Sigma
     if k:
         Q[k:, :k] = Lambda
         Q[:k, k:] = Lambda.T
+    return Q
+
+
+@dataclass
+class Filtered:
+    """Dense filter output for dates ``0..stop-1``: per-date active assets, filtered and predicted
+    state moments (state ``(f, mu[alive])``), log-likelihood and innovations; ``Q`` the joint
+    innovation covariance."""
+
+    k: int
+    Q: np.ndarray
+    alive: list
+    mf: list
+    Pf: list
+    mp: list
+    Pp: list
+    loglik: float
+    innov: np.ndarray
+    innov_var: np.ndarray
+
+    def predict(self):
+        """(mean, cov, assets) of the state predicted for date ``stop`` from the last filtered one."""
+        prev = self.alive[-1]
+        idx = np.concatenate([np.arange(self.k), self.k + prev])
+        return self.mf[-1], self.Pf[-1] + self.Q[np.ix_(idx, idx)], prev
+
+
+def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None) -> Filtered:
+    """Dense exact-diffuse filter over dates ``0..stop-1`` (all dates when ``stop`` is None); the
+    arguments are those of :func:`dense_smoother` with ``s2`` the (T,) squared scale."""
+    T, N = Y.shape
+    stop = T if stop is None else stop
+    Sigma = np.asarray(Sigma, dtype=float)
+    H = np.asarray(H, dtype=float)
+    k = 0 if Lambda is None else Lambda.shape[1]
+    obs = ~np.isnan(Y)
+    entry = first_observations(Y)
+    Q = joint_innovation_cov(Sigma, Lambda)
 
     alive, mf, Pf, mp, Pp = [], [], [], [], []
     innov = np.full((T, N), np.nan)
@@ -91,7 +135,7 @@ def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(
     m = np.zeros(k)
     P = np.zeros((k, k))
     fidx = np.arange(k)
-    for t in range(T):
+    for t in range(stop):
         if t > 0:
             idx = np.concatenate([fidx, k + prev])
             P = P + Q[np.ix_(idx, idx)]
@@ -146,9 +190,7 @@ def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(
         mf.append(m)
         Pf.append(P)
 
-    out = _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2)
-    return _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, out,
-                   cov_at=set(cov_at), want_estep=want_estep)
+    return Filtered(k, Q, alive, mf, Pf, mp, Pp, loglik, innov, innov_var)
 
 
 def _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2):
@@ -171,7 +213,11 @@ def _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2):
     return {"fm": fm, "fv": fv, "pm": pm, "pv": pv, "ffm": ffm, "ffv": ffv}
 
 
-def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep, cov_at, want_estep):
+def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep, cov_at, want_estep,
+            terminal=None):
+    """RTS smoother over the filtered dates of ``Y`` (T, N).  ``terminal = (ms, Ps, mp, Pp, alive)``
+    gives the smoothed and predicted state at date T (after the last filtered one, from a faster
+    path); the smoother then starts there, so the moments of ``w_T`` are included."""
     T, N = Y.shape
     sm = np.full((T, N), np.nan)
     sv = np.full((T, N), np.nan)
@@ -200,9 +246,15 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
             full_s[np.ix_(a, a)] = P[k:, k:]
             covs[t] = {"filtered": full_f, "smoothed": full_s}
 
-    ms, Ps = mf[T - 1], Pf[T - 1]
-    record(T - 1, ms, Ps)
-    for t in range(T - 1, 0, -1):
+    if terminal is None:
+        ms, Ps = mf[T - 1], Pf[T - 1]
+        record(T - 1, ms, Ps)
+        last = T - 1
+    else:
+        ms, Ps, m_next, P_next, a_next = terminal
+        alive, mp, Pp = alive + [a_next], mp + [m_next], Pp + [P_next]
+        last = T
+    for t in range(last, 0, -1):
         a_prev = alive[t - 1]
         pos = np.concatenate([np.arange(k), k + np.searchsorted(alive[t], a_prev)])
         J = _solve_pd(Pp[t], Pf[t - 1]).T                  # Pf_{t-1} Pp_t^{-1}

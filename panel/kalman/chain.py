@@ -1,0 +1,163 @@
+"""Independent scalar local-level chains over one stretch of dates (the decoupled form, DESIGN §4).
+
+Chain i over the stretch's L dates::
+
+    z_{t,i} = alpha_{t,i} + e_{t,i},   e ~ N(0, s_t^2)
+    alpha_{t,i} = alpha_{t-1,i} + u,   u ~ N(0, d_i)
+
+with a diffuse (flat) level at the first date.  The posterior precision is ``S^-1 + K / d_i`` with
+``S = diag(s_t^2)`` and ``K`` the path Laplacian (``K = D'D``, ``D`` first differences).  With
+``M = S^{1/2} K S^{1/2} = U diag(lam) U'`` — one tridiagonal eigenproblem per stretch, shared by all
+chains and all parameter values — every chain's posterior covariance is
+``S^{1/2} U diag(w) U' S^{1/2}``, ``w_j = d / (d + lam_j)``: smoothing is two basis transforms and
+the EM sums are closed forms in ``lam``.  With a constant scale, ``U`` is the orthonormal DCT-II
+basis and the transforms are FFTs.  The filtered (real-time) moments come from
+:func:`filter_chains`, a scalar recursion vectorised over chains.
+
+Diffuse convention: the flat level contributes ``-0.5 log(2 pi)`` per chain, as in the dense path.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import fft, linalg
+
+from panel.kalman.dense import LOG2PI
+
+_CACHE: dict = {}
+_CACHE_SIZE = 8
+
+
+class Basis:
+    """Eigenbasis of ``M = S^{1/2} K S^{1/2}`` for a stretch with squared scales ``s2`` (L,)."""
+
+    def __init__(self, s2: np.ndarray):
+        s2 = np.asarray(s2, dtype=float)
+        L = s2.size
+        self.L = L
+        self.s = np.sqrt(s2)
+        self.dct = bool(np.all(s2 == s2[0]))
+        if self.dct:
+            j = np.arange(L)
+            self.lam = 4.0 * s2[0] * np.sin(np.pi * j / (2.0 * L)) ** 2
+            self._U = None
+        elif L == 1:
+            self.lam, self._U = np.zeros(1), np.ones((1, 1))
+        else:
+            kd = np.full(L, 2.0)
+            kd[0] = kd[-1] = 1.0
+            self.lam, self._U = linalg.eigh_tridiagonal(s2 * kd, -self.s[:-1] * self.s[1:],
+                                                        lapack_driver="stemr")
+        self.lam[0] = 0.0            # the exact null vector S^{-1/2} 1 (a flat level is free)
+
+    def ut(self, x: np.ndarray) -> np.ndarray:
+        """``U' x`` for x (L, n)."""
+        if self.dct:
+            return fft.dct(x, type=2, norm="ortho", axis=0)
+        return self._U.T @ x
+
+    def u(self, x: np.ndarray) -> np.ndarray:
+        """``U x`` for x (L, n)."""
+        if self.dct:
+            return fft.idct(x, type=2, norm="ortho", axis=0)
+        return self._U @ x
+
+    def matrix(self) -> np.ndarray:
+        """Explicit ``U`` (L, L) (reporting only)."""
+        return self.u(np.eye(self.L)) if self.dct else self._U
+
+
+def basis_for(s2: np.ndarray) -> Basis:
+    """:class:`Basis` for ``s2``, memoised: the scale is data, fixed across the E-steps of a fit."""
+    key = np.asarray(s2, dtype=float).tobytes()
+    b = _CACHE.get(key)
+    if b is None:
+        if len(_CACHE) >= _CACHE_SIZE:
+            _CACHE.pop(next(iter(_CACHE)))
+        b = _CACHE[key] = Basis(s2)
+    return b
+
+
+@dataclass
+class ChainMoments:
+    """Diffuse-start posterior of n chains; arrays are (L, n) or (n,).
+
+    mean : E[alpha_t | z];  loglik : (n,) diffuse log-likelihood of each chain;
+    first_var : Var(alpha_first | z);  g : Cov(alpha_t, alpha_first | z) / first_var (None unless
+    asked);  sum_dvar : sum_t Var(alpha_t - alpha_{t-1} | z);  sum_var_s2 : sum_t Var(alpha_t | z)
+    / s_t^2;  var : Var(alpha_t | z) per date (None unless asked).
+    """
+
+    mean: np.ndarray
+    loglik: np.ndarray
+    first_var: np.ndarray
+    g: np.ndarray | None
+    sum_dvar: np.ndarray
+    sum_var_s2: np.ndarray
+    var: np.ndarray | None
+
+
+def smooth_chains(basis: Basis, z: np.ndarray, d: np.ndarray, *, want_g: bool = False,
+                  want_var: bool = False) -> ChainMoments:
+    """Smooth the chains ``z`` (L, n) with innovation variances ``d`` (n,) >= 0 on ``basis``."""
+    lam = basis.lam
+    s = basis.s[:, None]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = d[None, :] / (d[None, :] + lam[:, None])
+    w[0] = 1.0                                         # the flat level: no shrinkage
+    zeta = basis.ut(z / s)
+    mean = s * basis.u(w * zeta)
+    logdet = np.log(d[None, :] + lam[1:, None]).sum(axis=0)
+    quad = (zeta ** 2 * (1.0 - w)).sum(axis=0)
+    loglik = -0.5 * (basis.L * LOG2PI + logdet + quad)
+    if basis.dct:
+        u0 = fft.dct(np.eye(basis.L, 1)[:, 0], type=2, norm="ortho")
+    else:
+        u0 = basis.matrix()[0]
+    first_var = basis.s[0] ** 2 * (u0[:, None] ** 2 * w).sum(axis=0)
+    g = None
+    if want_g:
+        g = s * basis.u(u0[:, None] * w) * (basis.s[0] / first_var)[None, :]
+    var = None
+    if want_var:
+        U = basis.matrix()
+        var = basis.s[:, None] ** 2 * ((U * U) @ w)
+    return ChainMoments(mean=mean, loglik=loglik, first_var=first_var, g=g,
+                        sum_dvar=(lam[:, None] * w).sum(axis=0), sum_var_s2=w.sum(axis=0), var=var)
+
+
+@dataclass
+class ChainFilter:
+    """Filter of n chains started at an exactly known ``x = alpha_first``; arrays (L, n).
+
+    Given x and the data up to t: ``alpha_t ~ N(c_t + g_t x, p_t)``; the data up to t, as a
+    function of x, are the Gaussian pseudo-observation ``x ~ N(h_t / J_t, 1 / J_t)``.
+    """
+
+    c: np.ndarray
+    g: np.ndarray
+    p: np.ndarray
+    J: np.ndarray
+    h: np.ndarray
+
+
+def filter_chains(z: np.ndarray, s2: np.ndarray, d: np.ndarray) -> ChainFilter:
+    """Scalar Kalman recursions of the chains ``z`` (L, n) (scales ``s2`` (L,), variances ``d``)."""
+    L, n = z.shape
+    c, g, p, J, h = (np.empty((L, n)) for _ in range(5))
+    c[0], g[0], p[0] = 0.0, 1.0, 0.0
+    J[0] = 1.0 / s2[0]
+    h[0] = z[0] / s2[0]
+    for t in range(1, L):
+        pm = p[t - 1] + d
+        F = pm + s2[t]
+        v = z[t] - c[t - 1]
+        K = pm / F
+        J[t] = J[t - 1] + g[t - 1] ** 2 / F
+        h[t] = h[t - 1] + g[t - 1] * v / F
+        c[t] = c[t - 1] + K * v
+        g[t] = (1.0 - K) * g[t - 1]
+        p[t] = (1.0 - K) * pm
+    return ChainFilter(c=c, g=g, p=p, J=J, h=h)

@@ -1,0 +1,332 @@
+"""Exact fast path: dense filter up to the panel's final stretch, decoupled chains on the stretch.
+
+The final stretch ``a..T-1`` is the longest run of last dates with one observed set ``O`` in which
+no asset enters (a balanced panel is one stretch, ``a = 0``).  Assets active but unobserved there
+(``U``: exited, or gapped to the end) are "dormant".  On the stretch (DESIGN §4):
+
+* ``Sigma_OO v = d H_OO v`` with ``V' H_OO V = I``, ``V' Sigma_OO V = diag(d)``; ``z_t = V' y_{O,t}``
+  are n_O independent scalar local levels ``alpha = V' mu_O`` with observation variance ``s_t^2``
+  (valid with the volatility scale since ``H_t = s_t^2 H``); ``mu_O = W alpha`` with ``W = H V``.
+* Each chain is smoothed from a diffuse start (:mod:`panel.kalman.chain`).  The information before
+  the stretch is the dense filter's predicted state ``x = (f_a, mu_{A,a})`` ~ N(m, P) (or the
+  informative initial prior); since a diffuse chain's start is flat, the exact posterior is that
+  prior times the chains' start marginals ``N(alpha_a; mean_0, diag(first_var))``: one Kalman
+  update of ``x`` with the pseudo-observation ``Z x = V' mu_{O,a}``.  Given ``alpha_a`` each chain
+  is ``alpha_t = mean_t + g_t (alpha_a - mean_0) + noise``, so every moment is a sum of outer
+  products of per-chain coefficient vectors plus one coupling matrix ``Z P* Z' - diag(first_var)``.
+* Dormant levels never meet data again: ``w_U = B w_O + u`` (``B = Sigma_UO Sigma_OO^-1``) with
+  ``u ~ N(0, Sigma_{U|O})`` independent of everything observed; factor shocks likewise
+  ``eta = beta w_O + e`` with ``beta = Lambda_O' Sigma_OO^-1``, ``Var e = I - beta Lambda_O``.
+* Log-likelihood: diffuse balanced panel ``sum_i loglik_i(z) + (T - 1) log|det V|`` (the flat
+  start in z has ``P_inf = I`` where the dense path's has ``V'V``); with a prior ``sum_i
+  loglik_i + (n_O / 2) log 2 pi + log N(mean_0; Z m, Z P Z' + diag(first_var)) + L log|det V|``.
+* The dense smoother then runs backwards over the head from the stretch's smoothed first state.
+
+Cost per E-step: the head's dense steps, plus O(n^3 + L n^2) (O(L^2 n) basis transforms when the
+scale varies; FFTs when it is constant) on the stretch.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import linalg
+
+from panel.kalman import dense
+from panel.kalman.chain import basis_for, filter_chains, smooth_chains
+from panel.kalman.dense import LOG2PI, MomentGroup, _sym
+from panel.kalman.types import EStep, Smoothed
+
+
+def final_stretch_start(Y: np.ndarray) -> int:
+    """First date ``a`` of the final stretch (T when there is none to decouple)."""
+    obs = ~np.isnan(Y)
+    T = obs.shape[0]
+    if not obs[-1].any():
+        return T
+    change = np.flatnonzero((obs[1:] != obs[:-1]).any(axis=1))
+    a = 0 if change.size == 0 else int(change[-1]) + 1
+    if a > 0:
+        a = max(a, int(dense.first_observations(Y).max()) + 1)
+    return a if a < T else T
+
+
+class _Tail:
+    """The final stretch solved at given parameters (see the module docstring).
+
+    ``prior`` is None (diffuse balanced panel) or ``(m, P, A)``: the predicted state ``(f_a,
+    mu_{A,a})`` (k factors first) at the stretch's first date ``a``.
+    """
+
+    def __init__(self, Y, Sigma, H, s2, a, prior, Lambda, want_var):
+        T, N = Y.shape
+        self.a, self.L, self.N = a, T - a, N
+        self.k = k = 0 if Lambda is None else Lambda.shape[1]
+        self.O = O = np.flatnonzero(~np.isnan(Y[-1]))
+        self.A = A = np.arange(N) if prior is None else prior[2]
+        self.U = U = np.setdiff1d(A, O)
+        nO = O.size
+        SOO = Sigma[np.ix_(O, O)]
+        HOO = H[np.ix_(O, O)]
+        d, V = linalg.eigh(SOO, HOO)
+        self.d = np.maximum(d, 0.0)
+        self.V, self.W = V, HOO @ V                         # mu_O = W alpha, W = V^{-T}
+        self.s2 = s2[a:]
+        self.z = Y[a:, O] @ V
+        self.basis = basis_for(self.s2)
+        self.coupled = prior is not None
+        ch = self.ch = smooth_chains(self.basis, self.z, self.d, want_g=True, want_var=want_var)
+        logdet_v = -np.log(np.diag(linalg.cholesky(HOO, lower=True))).sum()
+        if prior is None:
+            # State x = alpha_a itself, posterior diag(first_var); f_a = 0 (the first date).
+            self.loglik = ch.loglik.sum() + (self.L - 1) * logdet_v
+            self.Z, self.EO = np.eye(nO), self.W
+            self.EU, self.Ef = np.zeros((0, nO)), np.zeros((k, nO))
+            self.m_star, self.P_star = ch.mean[0].copy(), np.diag(ch.first_var)
+            self.alpha = ch.mean
+        else:
+            m, P, _ = prior
+            posO = k + np.searchsorted(A, O)
+            self.Z = np.zeros((nO, m.size))
+            self.Z[:, posO] = V.T
+            self.EO = np.eye(m.size)[posO]
+            self.EU = np.eye(m.size)[k + np.searchsorted(A, U)]
+            self.Ef = np.eye(m.size)[:k]
+            PZ = P @ self.Z.T
+            cf = linalg.cho_factor(self.Z @ PZ + np.diag(ch.first_var), lower=True)
+            resid = ch.mean[0] - self.Z @ m
+            Fr = linalg.cho_solve(cf, resid)
+            self.m_star = m + PZ @ Fr
+            self.P_star = _sym(P - PZ @ linalg.cho_solve(cf, PZ.T))
+            self.loglik = (ch.loglik.sum() - np.log(np.diag(cf[0])).sum() - 0.5 * resid @ Fr
+                           + self.L * logdet_v)
+            self.delta = self.Z @ self.m_star - ch.mean[0]
+            self.coupling = _sym(self.Z @ self.P_star @ self.Z.T) - np.diag(ch.first_var)
+            self.alpha = ch.mean + ch.g * self.delta
+        if U.size:
+            self.B = linalg.solve(SOO, Sigma[np.ix_(O, U)], assume_a="pos").T
+            self.S_UgO = _sym(Sigma[np.ix_(U, U)] - self.B @ Sigma[np.ix_(O, U)])
+        if k:
+            self.beta = linalg.solve(SOO, Lambda[O], assume_a="pos").T
+            self.e_var = np.diag(np.eye(k) - self.beta @ Lambda[O])
+
+    # ---------------------------------------------------------------- EM moments
+    def groups(self):
+        """(w groups, e groups) of the stretch: w over dates a+1..T-1, e over a..T-1."""
+        ch, W, L = self.ch, self.W, self.L
+        s = np.sqrt(self.s2)[:, None]
+        dA = np.diff(self.alpha, axis=0)
+        Mw = dA.T @ dA + np.diag(ch.sum_dvar)
+        R = (self.z - self.alpha) / s
+        Me = R.T @ R + np.diag(ch.sum_var_s2)
+        if self.coupled:
+            dg = np.diff(ch.g, axis=0)
+            gs = ch.g / s
+            Mw += (dg.T @ dg) * self.coupling
+            Me += (gs.T @ gs) * self.coupling
+        e_groups = [_group(self.O, self.N, L, W @ Me @ W.T)]
+        if L < 2:
+            return [], e_groups
+        MwO = W @ Mw @ W.T
+        if self.U.size:
+            io, iu = np.searchsorted(self.A, self.O), np.searchsorted(self.A, self.U)
+            M = np.zeros((self.A.size, self.A.size))
+            BM = self.B @ MwO
+            M[np.ix_(io, io)] = MwO
+            M[np.ix_(iu, io)] = BM
+            M[np.ix_(io, iu)] = BM.T
+            M[np.ix_(iu, iu)] = BM @ self.B.T + (L - 1) * self.S_UgO
+            MwO = M
+        return [_group(self.A, self.N, L - 1, MwO)], e_groups
+
+    # ---------------------------------------------------------------- reporting
+    def _loadings(self, g_t, P):
+        """Rows mapping the state x to (mu_U, f) at a date with chain coefficients ``g_t``."""
+        WGZ = (self.W * g_t) @ self.Z
+        out = []
+        if self.U.size:
+            out.append(self.EU - self.B @ self.EO + self.B @ WGZ)
+        if self.k:
+            out.append(self.Ef - self.beta @ self.EO + self.beta @ WGZ)
+        return WGZ, out
+
+    def _moments(self, tau, alpha_t, g_t, r_t, m_x, P_x, cov=False):
+        """Means and marginal variances of (mu_O, mu_U, f) at stretch date ``tau`` given
+        ``alpha_t = alpha_mean + g_t (Z x - Z m_x) + noise(r_t)`` and x ~ N(m_x, P_x)."""
+        W = self.W
+        muO = W @ alpha_t
+        WGZ, rows = self._loadings(g_t, P_x)
+        if self.coupled:
+            C = WGZ @ P_x
+            varO = (W * W) @ r_t + np.einsum("ij,ij->i", C, WGZ)
+        else:
+            varO = (W * W) @ (r_t + g_t ** 2 * np.diag(P_x))
+        out = {"muO": muO, "varO": varO}
+        i = 0
+        if self.U.size:
+            D = rows[i]
+            BW = self.B @ W
+            out["muU"] = self.EU @ m_x + self.B @ (muO - self.EO @ m_x)
+            out["varU"] = (np.einsum("ij,jk,ik->i", D, P_x, D) + (BW * BW) @ r_t
+                           + tau * np.diag(self.S_UgO))
+            i += 1
+        if self.k:
+            D = rows[i]
+            bW = self.beta @ W
+            out["f"] = self.Ef @ m_x + self.beta @ (muO - self.EO @ m_x)
+            out["fvar"] = np.einsum("ij,jk,ik->i", D, P_x, D) + (bW * bW) @ r_t + tau * self.e_var
+        if cov:
+            DO = WGZ
+            nOO = (W * r_t) @ W.T
+            cOO = DO @ P_x @ DO.T + nOO
+            full = np.full((self.N, self.N), np.nan)
+            full[np.ix_(self.O, self.O)] = cOO
+            if self.U.size:
+                DU = rows[0]
+                cUO = DU @ P_x @ DO.T + self.B @ nOO
+                cUU = DU @ P_x @ DU.T + self.B @ nOO @ self.B.T + tau * self.S_UgO
+                full[np.ix_(self.U, self.O)] = cUO
+                full[np.ix_(self.O, self.U)] = cUO.T
+                full[np.ix_(self.U, self.U)] = _sym(cUU)
+            out["cov"] = _sym(full)
+        return out
+
+    def report(self, Y, H, Sigma, prior, cov_at):
+        """Per-date arrays (L, N) and (L, k) on the stretch, plus full covariances at ``cov_at``."""
+        L, N, k, a = self.L, self.N, self.k, self.a
+        ch = self.ch
+        arr = {key: np.full((L, N), np.nan) for key in ("fm", "fv", "sm", "sv", "pm", "pv", "iv", "inn")}
+        for key in ("ffm", "ffv", "fsm", "fsv"):
+            arr[key] = np.zeros((L, k))
+        covs = {}
+        r_s = ch.var - ch.g ** 2 * ch.first_var
+        fc = filter_chains(self.z, self.s2, self.d)
+        O, U = self.O, self.U
+        if self.coupled:
+            m, P, _ = prior
+            PZ = P @ self.Z.T
+            ZPZ = self.Z @ PZ
+        for tau in range(L):
+            t = a + tau
+            want_cov = t in cov_at
+            sm = self._moments(tau, self.alpha[tau], ch.g[tau], r_s[tau], self.m_star, self.P_star,
+                               cov=want_cov)
+            J, h, g = fc.J[tau], fc.h[tau], fc.g[tau]
+            if self.coupled:
+                cf = linalg.cho_factor(ZPZ + np.diag(1.0 / J), lower=True)
+                m_x = m + PZ @ linalg.cho_solve(cf, h / J - self.Z @ m)
+                P_x = _sym(P - PZ @ linalg.cho_solve(cf, PZ.T))
+            else:
+                m_x, P_x = h / J, np.diag(1.0 / J)
+            alpha_f = fc.c[tau] + g * (self.Z @ m_x)
+            fm = self._moments(tau, alpha_f, g, fc.p[tau], m_x, P_x, cov=want_cov)
+            for src, pre in ((fm, "f"), (sm, "s")):
+                arr[pre + "m"][tau, O] = src["muO"]
+                arr[pre + "v"][tau, O] = src["varO"]
+                if U.size:
+                    arr[pre + "m"][tau, U] = src["muU"]
+                    arr[pre + "v"][tau, U] = src["varU"]
+                if k:
+                    arr["f" + pre + "m"][tau] = src["f"]
+                    arr["f" + pre + "v"][tau] = src["fvar"]
+            if want_cov:
+                covs[t] = {"filtered": fm["cov"], "smoothed": sm["cov"]}
+        A = self.A
+        if self.coupled:
+            arr["pm"][0, A] = m[k:]
+            arr["pv"][0, A] = np.diag(P)[k:]
+        arr["pm"][1:, A] = arr["fm"][:-1, A]
+        arr["pv"][1:, A] = arr["fv"][:-1, A] + np.diag(Sigma)[A]
+        arr["inn"][:, O] = Y[a:, O] - arr["pm"][:, O]
+        arr["iv"][:, O] = arr["pv"][:, O] + self.s2[:, None] * np.diag(H)[O]
+        if a == 0:                  # the dense path reports no prediction for the first date
+            arr["pm"][0] = arr["pv"][0] = np.nan
+        return arr, covs
+
+
+def _group(members, N, count, M):
+    mask = np.zeros(N, bool)
+    mask[members] = True
+    return MomentGroup(mask, count, _sym(M))
+
+
+def _merge(*lists):
+    """Sum moment groups with the same mask."""
+    out = {}
+    for groups in lists:
+        for g in groups:
+            key = g.mask.tobytes()
+            if key in out:
+                out[key] = MomentGroup(g.mask, out[key].count + g.count, out[key].M + g.M)
+            else:
+                out[key] = g
+    return list(out.values())
+
+
+def _prior(Y, Sigma, H, s2, init, Lambda, a):
+    """(dense head filter or None, prior at the stretch start or None)."""
+    N = Y.shape[1]
+    k = 0 if Lambda is None else Lambda.shape[1]
+    if a > 0:
+        flt = dense.dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda, stop=a)
+        return flt, flt.predict()
+    if init is None:
+        return None, None
+    m0, v0 = init
+    m = np.concatenate([np.zeros(k), np.full(N, float(m0))])
+    P = linalg.block_diag(np.zeros((k, k)), v0 * np.eye(N))
+    return None, (m, P, np.arange(N))
+
+
+def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
+                     want_estep=True, want_report=True, a=None) -> Smoothed:
+    """Same contract and result as :func:`panel.kalman.dense.dense_smoother` (to rounding).
+
+    ``a`` : first date of the decoupled final stretch (default :func:`final_stretch_start`);
+    ``want_report=False`` skips the per-date arrays of the stretch (E-step only).
+    """
+    Y = np.asarray(Y, dtype=float)
+    Sigma = np.asarray(Sigma, dtype=float)
+    H = np.asarray(H, dtype=float)
+    T, N = Y.shape
+    s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
+    a = final_stretch_start(Y) if a is None else a
+    if a >= T:
+        return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
+                                    want_estep=want_estep)
+    cov_at = set(cov_at)
+    flt, prior = _prior(Y, Sigma, H, s2, init, Lambda, a)
+    tail = _Tail(Y, Sigma, H, s2, a, prior, Lambda, want_var=want_report)
+    k = tail.k
+    loglik = tail.loglik
+    w_groups, e_groups = tail.groups() if want_estep else ([], [])
+    head = None
+    if flt is not None:
+        loglik += flt.loglik
+        rep = dense._report_arrays(a, N, k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
+        head = dense._smooth(Y[:a], ~np.isnan(Y[:a]), s2[:a], k, flt.alive, flt.mf, flt.Pf,
+                             flt.mp, flt.Pp, flt.loglik, flt.innov[:a], flt.innov_var[:a], rep,
+                             cov_at={t for t in cov_at if t < a}, want_estep=want_estep,
+                             terminal=(tail.m_star, tail.P_star, prior[0], prior[1], prior[2]))
+        if want_estep:
+            w_groups = _merge(head.estep.w_groups, w_groups)
+            e_groups = _merge(head.estep.e_groups, e_groups)
+    estep = EStep(loglik, w_groups, e_groups) if want_estep else None
+    if not want_report:
+        nan_t = np.full((T, N), np.nan)
+        return Smoothed(loglik, nan_t, nan_t, nan_t, nan_t, nan_t, nan_t, nan_t, nan_t,
+                        *(np.zeros((T, k)),) * 4, estep=estep)
+    arr, covs = tail.report(Y, H, Sigma, prior, cov_at)
+    if head is not None:
+        pairs = (("fm", head.filtered_mean), ("fv", head.filtered_var), ("sm", head.smoothed_mean),
+                 ("sv", head.smoothed_var), ("pm", head.predicted_mean), ("pv", head.predicted_var),
+                 ("inn", head.innovation), ("iv", head.innovation_var),
+                 ("ffm", head.factor_filtered_mean), ("ffv", head.factor_filtered_var),
+                 ("fsm", head.factor_smoothed_mean), ("fsv", head.factor_smoothed_var))
+        arr = {key: np.concatenate([h_arr, arr[key]]) for key, h_arr in pairs}
+        covs.update(head.covariances)
+    return Smoothed(loglik=loglik, filtered_mean=arr["fm"], filtered_var=arr["fv"],
+                    smoothed_mean=arr["sm"], smoothed_var=arr["sv"], predicted_mean=arr["pm"],
+                    predicted_var=arr["pv"], innovation=arr["inn"], innovation_var=arr["iv"],
+                    factor_filtered_mean=arr["ffm"], factor_filtered_var=arr["ffv"],
+                    factor_smoothed_mean=arr["fsm"], factor_smoothed_var=arr["fsv"],
+                    estep=estep, covariances=covs)
