@@ -51,6 +51,7 @@ class Basis:
             self.lam, self._U = linalg.eigh_tridiagonal(s2 * kd, -self.s[:-1] * self.s[1:],
                                                         lapack_driver="stemr")
         self.lam[0] = 0.0            # the exact null vector S^{-1/2} 1 (a flat level is free)
+        self.u0 = self.ut(np.eye(L, 1))[:, 0]                  # first row of U
 
     def ut(self, x: np.ndarray) -> np.ndarray:
         """``U' x`` for x (L, n)."""
@@ -112,10 +113,7 @@ def smooth_chains(basis: Basis, z: np.ndarray, d: np.ndarray, *, want_g: bool = 
     logdet = np.log(d[None, :] + lam[1:, None]).sum(axis=0)
     quad = (zeta ** 2 * (1.0 - w)).sum(axis=0)
     loglik = -0.5 * (basis.L * LOG2PI + logdet + quad)
-    if basis.dct:
-        u0 = fft.dct(np.eye(basis.L, 1)[:, 0], type=2, norm="ortho")
-    else:
-        u0 = basis.matrix()[0]
+    u0 = basis.u0
     first_var = basis.s[0] ** 2 * (u0[:, None] ** 2 * w).sum(axis=0)
     g = None
     if want_g:

@@ -1,24 +1,78 @@
-"""Choice of E-step path.  Every path returns the same :class:`panel.kalman.types.EStep`; the dense
-path is the reference.  ``method="auto"`` picks the cheapest exact path for the panel's pattern."""
+"""Choice of E-step path.  Every path returns the same :class:`panel.kalman.types.EStep` (to
+rounding); the dense path is the reference.
+
+Methods
+-------
+dense     the reference filter/smoother over the active assets, O(T (k+N)^3), any pattern.
+stretch   dense up to the panel's final stretch (the last dates with one observed set and no
+          entry), decoupled scalar chains on it (:mod:`panel.kalman.stretch`); any pattern.
+balanced  the stretch path when the whole panel is one stretch (fully balanced); refuses others.
+auto      the cheaper of dense and stretch by :func:`estimated_cost`.
+"""
 
 from __future__ import annotations
 
-from panel.kalman.dense import dense_smoother
+import numpy as np
 
-METHODS = ("auto", "dense")
+from panel.kalman.dense import dense_smoother, first_observations
+from panel.kalman.stretch import final_stretch_start, stretch_smoother
+
+METHODS = ("auto", "dense", "stretch", "balanced")
+
+# Rough per-date costs in flops-equivalents: a dense step does ~10 (k+n)^3 of small LAPACK calls
+# plus Python overhead; a decoupled date costs O(n^2) plus its share of the transforms.
+_DENSE_OVERHEAD = 2e5
+_DENSE_CUBE = 10.0
+
+
+def estimated_cost(Y, method: str, scale_varies: bool = False) -> float:
+    """Estimated cost of one E-step of ``method`` ("dense" or "stretch") on ``Y`` (T, N)."""
+    Y = np.asarray(Y, dtype=float)
+    T, N = Y.shape
+    entry = first_observations(Y)
+    n_active = (entry[None, :] <= np.arange(T)[:, None]).sum(axis=1)
+
+    def dense_cost(dates):
+        return float(np.sum(_DENSE_OVERHEAD + _DENSE_CUBE * n_active[dates].astype(float) ** 3))
+
+    if method == "dense":
+        return dense_cost(slice(None))
+    a = final_stretch_start(Y)
+    if a >= T:
+        return dense_cost(slice(None))
+    L, n = T - a, int(n_active[-1])
+    basis = L * L * n if scale_varies else 10.0 * L * n * np.log2(max(L, 2))
+    return dense_cost(slice(0, a)) + 20.0 * n ** 3 + 6.0 * L * n * n + 3.0 * basis
+
+
+def choose(Y, method: str, scale2=None) -> str:
+    """Resolve ``method`` to "dense" or "stretch" for the panel ``Y``."""
+    if method not in METHODS:
+        raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
+    if method == "balanced":
+        if final_stretch_start(np.asarray(Y, dtype=float)) != 0:
+            raise ValueError("method='balanced' needs a fully balanced panel (every asset observed "
+                             "at every date); use 'stretch' or 'auto'")
+        return "stretch"
+    if method != "auto":
+        return method
+    varies = scale2 is not None and not np.all(np.asarray(scale2) == np.asarray(scale2)[0])
+    costs = {m: estimated_cost(Y, m, varies) for m in ("dense", "stretch")}
+    return min(costs, key=costs.get)
 
 
 def estep(Y, Sigma, H, scale2, init, method: str = "auto"):
     """Log-likelihood and EM moments at ``(Sigma, H)``; see :func:`panel.kalman.dense.dense_smoother`."""
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
-    return dense_smoother(Y, Sigma, H, scale2, init=init, want_estep=True).estep
+    if choose(Y, method, scale2) == "dense":
+        return dense_smoother(Y, Sigma, H, scale2, init=init, want_estep=True).estep
+    return stretch_smoother(Y, Sigma, H, scale2, init=init, want_report=False).estep
 
 
 def report(Y, Sigma, H, scale2, init, Lambda=None, cov_at=(), method: str = "auto"):
     """Per-date filtered/smoothed/predicted moments (and factor paths when ``Lambda`` is given) as a
     :class:`panel.kalman.types.Smoothed`, without EM moments."""
-    if method not in METHODS:
-        raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
-    return dense_smoother(Y, Sigma, H, scale2, init=init, Lambda=Lambda, cov_at=cov_at,
-                          want_estep=False)
+    if choose(Y, method, scale2) == "dense":
+        return dense_smoother(Y, Sigma, H, scale2, init=init, Lambda=Lambda, cov_at=cov_at,
+                              want_estep=False)
+    return stretch_smoother(Y, Sigma, H, scale2, init=init, Lambda=Lambda, cov_at=cov_at,
+                            want_estep=False)

@@ -74,7 +74,8 @@ class _Tail:
         self.z = Y[a:, O] @ V
         self.basis = basis_for(self.s2)
         self.coupled = prior is not None
-        ch = self.ch = smooth_chains(self.basis, self.z, self.d, want_g=True, want_var=want_var)
+        ch = self.ch = smooth_chains(self.basis, self.z, self.d, want_g=prior is not None or want_var,
+                                    want_var=want_var)
         logdet_v = -np.log(np.diag(linalg.cholesky(HOO, lower=True))).sum()
         if prior is None:
             # State x = alpha_a itself, posterior diag(first_var); f_a = 0 (the first date).
@@ -139,54 +140,42 @@ class _Tail:
         return [_group(self.A, self.N, L - 1, MwO)], e_groups
 
     # ---------------------------------------------------------------- reporting
-    def _loadings(self, g_t, P):
-        """Rows mapping the state x to (mu_U, f) at a date with chain coefficients ``g_t``."""
-        WGZ = (self.W * g_t) @ self.Z
-        out = []
-        if self.U.size:
-            out.append(self.EU - self.B @ self.EO + self.B @ WGZ)
-        if self.k:
-            out.append(self.Ef - self.beta @ self.EO + self.beta @ WGZ)
-        return WGZ, out
-
-    def _moments(self, tau, alpha_t, g_t, r_t, m_x, P_x, cov=False):
+    def _moments(self, tau, alpha_t, g_t, r_t, m_x, P_x, ZPZ, cov=False):
         """Means and marginal variances of (mu_O, mu_U, f) at stretch date ``tau`` given
-        ``alpha_t = alpha_mean + g_t (Z x - Z m_x) + noise(r_t)`` and x ~ N(m_x, P_x)."""
+        ``alpha_t = alpha_mean + g_t (Z x - Z m_x) + noise(r_t)``, x ~ N(m_x, P_x), ``ZPZ = Z P_x Z'``
+        (a 1-D diagonal when the chains are uncoupled)."""
         W = self.W
+        Wg = W * g_t
         muO = W @ alpha_t
-        WGZ, rows = self._loadings(g_t, P_x)
-        if self.coupled:
-            C = WGZ @ P_x
-            varO = (W * W) @ r_t + np.einsum("ij,ij->i", C, WGZ)
+        if ZPZ.ndim == 1:
+            varO = (W * W) @ (r_t + g_t ** 2 * ZPZ)
         else:
-            varO = (W * W) @ (r_t + g_t ** 2 * np.diag(P_x))
+            varO = (W * W) @ r_t + np.einsum("ij,ij->i", Wg @ ZPZ, Wg)
         out = {"muO": muO, "varO": varO}
-        i = 0
+        rows = {}
         if self.U.size:
-            D = rows[i]
             BW = self.B @ W
+            D = rows["U"] = self.EU - self.B @ self.EO + (BW * g_t) @ self.Z
             out["muU"] = self.EU @ m_x + self.B @ (muO - self.EO @ m_x)
             out["varU"] = (np.einsum("ij,jk,ik->i", D, P_x, D) + (BW * BW) @ r_t
                            + tau * np.diag(self.S_UgO))
-            i += 1
         if self.k:
-            D = rows[i]
             bW = self.beta @ W
+            D = self.Ef - self.beta @ self.EO + (bW * g_t) @ self.Z
             out["f"] = self.Ef @ m_x + self.beta @ (muO - self.EO @ m_x)
             out["fvar"] = np.einsum("ij,jk,ik->i", D, P_x, D) + (bW * bW) @ r_t + tau * self.e_var
         if cov:
-            DO = WGZ
+            DO = Wg @ self.Z
             nOO = (W * r_t) @ W.T
-            cOO = DO @ P_x @ DO.T + nOO
             full = np.full((self.N, self.N), np.nan)
-            full[np.ix_(self.O, self.O)] = cOO
+            full[np.ix_(self.O, self.O)] = DO @ P_x @ DO.T + nOO
             if self.U.size:
-                DU = rows[0]
+                DU = rows["U"]
                 cUO = DU @ P_x @ DO.T + self.B @ nOO
                 cUU = DU @ P_x @ DU.T + self.B @ nOO @ self.B.T + tau * self.S_UgO
                 full[np.ix_(self.U, self.O)] = cUO
                 full[np.ix_(self.O, self.U)] = cUO.T
-                full[np.ix_(self.U, self.U)] = _sym(cUU)
+                full[np.ix_(self.U, self.U)] = cUU
             out["cov"] = _sym(full)
         return out
 
@@ -205,20 +194,25 @@ class _Tail:
             m, P, _ = prior
             PZ = P @ self.Z.T
             ZPZ = self.Z @ PZ
+            ZPZ_s = self.coupling + np.diag(ch.first_var)          # Z P* Z'
+        else:
+            ZPZ_s = ch.first_var
         for tau in range(L):
             t = a + tau
             want_cov = t in cov_at
             sm = self._moments(tau, self.alpha[tau], ch.g[tau], r_s[tau], self.m_star, self.P_star,
-                               cov=want_cov)
+                               ZPZ_s, cov=want_cov)
             J, h, g = fc.J[tau], fc.h[tau], fc.g[tau]
             if self.coupled:
                 cf = linalg.cho_factor(ZPZ + np.diag(1.0 / J), lower=True)
+                FiZPZ = linalg.cho_solve(cf, ZPZ)
                 m_x = m + PZ @ linalg.cho_solve(cf, h / J - self.Z @ m)
                 P_x = _sym(P - PZ @ linalg.cho_solve(cf, PZ.T))
+                ZPZ_f = _sym(ZPZ - ZPZ @ FiZPZ)
             else:
-                m_x, P_x = h / J, np.diag(1.0 / J)
+                m_x, P_x, ZPZ_f = h / J, np.diag(1.0 / J), 1.0 / J
             alpha_f = fc.c[tau] + g * (self.Z @ m_x)
-            fm = self._moments(tau, alpha_f, g, fc.p[tau], m_x, P_x, cov=want_cov)
+            fm = self._moments(tau, alpha_f, g, fc.p[tau], m_x, P_x, ZPZ_f, cov=want_cov)
             for src, pre in ((fm, "f"), (sm, "s")):
                 arr[pre + "m"][tau, O] = src["muO"]
                 arr[pre + "v"][tau, O] = src["varO"]
