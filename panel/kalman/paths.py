@@ -23,6 +23,7 @@ METHODS = ("auto", "dense", "stretch", "balanced")
 # plus Python overhead; a decoupled date costs O(n^2) plus its share of the transforms.
 _DENSE_OVERHEAD = 2e5
 _DENSE_CUBE = 10.0
+_STRETCH_OVERHEAD = 5e5     # eigenproblems, transforms and the coupling solve, per E-step
 
 
 def estimated_cost(Y, method: str, scale_varies: bool = False) -> float:
@@ -42,7 +43,8 @@ def estimated_cost(Y, method: str, scale_varies: bool = False) -> float:
         return dense_cost(slice(None))
     L, n = T - a, int(n_active[-1])
     basis = L * L * n if scale_varies else 10.0 * L * n * np.log2(max(L, 2))
-    return dense_cost(slice(0, a)) + 20.0 * n ** 3 + 6.0 * L * n * n + 3.0 * basis
+    return (dense_cost(slice(0, a)) + _STRETCH_OVERHEAD + 20.0 * n ** 3 + 6.0 * L * n * n
+            + 3.0 * basis)
 
 
 def choose(Y, method: str, scale2=None) -> str:
