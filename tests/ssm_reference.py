@@ -50,3 +50,35 @@ def statsmodels_smoother(Y, Sigma, H, scale2=None, Lambda=None, init=None):
 def covariance_diagonals(cov):
     """(m, m, T) -> (T, m) diagonals."""
     return np.einsum("iit->ti", cov)
+
+
+class ExactLocalLevel(MLEModel):
+    """Univariate local level model in statsmodels with exact diffuse initialisation; parameters
+    (sigma2_eps, sigma2_eta), fitted by statsmodels' own optimiser."""
+
+    def __init__(self, y):
+        super().__init__(y, k_states=1)
+        self.ssm["design"] = np.ones((1, 1))
+        self.ssm["transition"] = np.ones((1, 1))
+        self.ssm["selection"] = np.ones((1, 1))
+        self.ssm.initialize_diffuse()
+
+    @property
+    def start_params(self):
+        v = np.nanvar(self.endog)
+        return np.array([v / 2, v / 20])
+
+    @property
+    def param_names(self):
+        return ["sigma2.eps", "sigma2.eta"]
+
+    def transform_params(self, unconstrained):
+        return unconstrained ** 2
+
+    def untransform_params(self, constrained):
+        return constrained ** 0.5
+
+    def update(self, params, **kwargs):
+        params = super().update(params, **kwargs)
+        self.ssm["obs_cov", 0, 0] = params[0]
+        self.ssm["state_cov", 0, 0] = params[1]

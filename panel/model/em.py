@@ -42,13 +42,19 @@ class EMOutcome:
 
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
-           bounds=None) -> EMOutcome:
+           bounds=None, extrapolate: bool = True) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
     ``score(e, p) -> (n_theta,)`` enables the quasi-Newton finish, within ``bounds`` (a list of
-    (low, high) per packed parameter).  ``max_iter`` bounds the number of E-steps.
+    (low, high) per packed parameter), which also clip SQUAREM's extrapolation;
+    ``extrapolate=False`` turns SQUAREM off.  ``max_iter`` bounds the number of E-steps.
     """
+    accelerate = accelerate and extrapolate
+    lo = hi = None
+    if bounds is not None:
+        lo = np.array([-np.inf if b[0] is None else b[0] for b in bounds])
+        hi = np.array([np.inf if b[1] is None else b[1] for b in bounds])
     start = time.perf_counter()
     p, e = p0, estep(p0)
     obj = objective(e, p)
@@ -89,7 +95,10 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
                 a = min(-1.0, -np.linalg.norm(r) / nv) if nv > 0 else -1.0
                 while a < -1.01 and n < max_iter:
                     try:
-                        pe = packer.unpack(t0 - 2.0 * a * r + a * a * v, p2)
+                        te = t0 - 2.0 * a * r + a * a * v
+                        if lo is not None:
+                            te = np.clip(te, lo, hi)
+                        pe = packer.unpack(te, p2)
                         ee = estep(pe)
                         oe = objective(ee, pe)
                     except (np.linalg.LinAlgError, ValueError, FloatingPointError):
@@ -129,26 +138,37 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
     best = {"p": p, "e": e, "obj": obj}
     count = {"n": n}
     t_start = elapsed()
+    theta0 = packer.pack(p)
+    # Raw loadings are orders of magnitude smaller than log variances: optimise theta / d with d
+    # the magnitude of each raw entry, so that L-BFGS sees a well-scaled problem.
+    raw = ~packer.log_variance_mask()
+    mag = np.abs(theta0[raw])
+    d = np.ones(theta0.size)
+    if raw.any():
+        d[raw] = np.maximum(mag, np.median(mag[mag > 0]) if (mag > 0).any() else 1.0)
+    scale = max(1.0, abs(obj))
 
-    def f(theta):
+    def f(u):
         if count["n"] >= max_iter:
             raise _OutOfTime("max_iter")
         if time_left is not None and elapsed() - t_start > time_left:
             raise _OutOfTime("time_budget")
-        pp = packer.unpack(theta, p)
+        pp = packer.unpack(u * d, p)
         ee = estep(pp)
         oo = objective(ee, pp)
         count["n"] += 1
         if oo > best["obj"]:
             best.update(p=pp, e=ee, obj=oo)
             trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
-        return -oo, -score(ee, pp)
+        return -oo / scale, -score(ee, pp) * d / scale
 
-    scale = max(1.0, abs(obj))
+    ubounds = None
+    if bounds is not None:
+        ubounds = [(None if lo is None else lo / dj, None if hi is None else hi / dj)
+                   for (lo, hi), dj in zip(bounds, d)]
     try:
-        res = optimize.minimize(lambda th: tuple(v / scale for v in f(th)), packer.pack(p), jac=True,
-                                method="L-BFGS-B", bounds=bounds,
-                                options={"maxfun": max(1, max_iter - n), "ftol": 1e-15, "gtol": 1e-9,
+        res = optimize.minimize(f, theta0 / d, jac=True, method="L-BFGS-B", bounds=ubounds,
+                                options={"maxfun": max(1, max_iter - n), "ftol": 1e-15, "gtol": 1e-10,
                                          "maxcor": 20})
         if res.success:
             status, message = "converged", f"converged after {count['n']} E-steps (quasi-Newton finish)"

@@ -108,7 +108,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> Pan
     want_se = spec.std_errors == "always" or (spec.std_errors == "auto" and n_free <= AUTO_SE_LIMIT)
     if n_free and want_se:
         se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure)
-    elif n_free:
+    elif n_free and spec.std_errors == "auto":
         se_note = f"standard errors skipped ({n_free} free parameters > {AUTO_SE_LIMIT}; std_errors='always' forces them)"
     if se_note:
         message = f"{message}; {se_note}"
@@ -117,10 +117,12 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> Pan
 
 
 def _quasi_newton_setup(prob: _Problem, floor: float) -> dict:
-    """Score and box bounds for the quasi-Newton finish (none when a bound is not a box)."""
+    """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
+    finish) and the score.  With factors and a premium-volatility cap the bound is not a box:
+    then plain EM only, whose M-step enforces it."""
     rs = prob.rs
-    if prob.spec.acceleration != "quasi-newton" or (rs.max_sigma_diag is not None and rs.k > 0):
-        return {}
+    if rs.max_sigma_diag is not None and rs.k > 0:
+        return {"extrapolate": False}
     logvar = prob.packer.log_variance_mask()
     n_q = int(prob.packer.free_q.sum())
     q_slice = slice(int(prob.packer.lam_free.sum()), int(prob.packer.lam_free.sum()) + n_q)
@@ -138,7 +140,8 @@ def _quasi_newton_setup(prob: _Problem, floor: float) -> dict:
     def score(e, p):
         return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
 
-    return {"score": score, "bounds": bounds}
+    qn = prob.spec.acceleration == "quasi-newton"
+    return {"score": score if qn else None, "bounds": bounds}
 
 
 def evaluate(data, params: Params, spec: ModelSpec | None = None) -> PanelFit:
@@ -170,7 +173,7 @@ def _check_start(p: Params, prob: _Problem) -> Params:
 def _boundary_status(p, rs, floor, assets, status, message):
     notes = []
     free_q = np.ones(p.n_assets, bool) if rs.fixed_q is None else np.isnan(rs.fixed_q)
-    at_zero = free_q & (p.q <= floor * 1.0001)
+    at_zero = free_q & (p.q <= ms.BOUNDARY_RATIO * np.diag(p.H))
     if at_zero.any():
         names = ", ".join(np.array(assets)[at_zero][:5])
         notes.append(f"own premium innovation variance at zero (boundary) for {names}; "

@@ -26,7 +26,9 @@ from panel.model.params import Params, canonical_loadings
 from panel.model.spec import ResolvedSpec
 
 FA_INNER_STEPS = 10
-VAR_FLOOR = 1e-14  # relative to the mean return-shock variance: a variance at the floor is a boundary
+VAR_FLOOR = 1e-12       # relative to the mean return-shock variance: keeps covariances invertible
+BOUNDARY_RATIO = 1e-8   # premium innovation variance below this fraction of the return-shock
+                        # variance: the premium is constant in practice (a boundary solution)
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,116 @@
+"""Rules of the model that hold by construction: common practice, a hand-computed example, the
+settings' validation and the boundary reporting."""
+
+import math
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import panel
+from panel.model.spec import SpecError
+
+
+def one_asset(values, start="2020-01-31"):
+    idx = pd.date_range(start, periods=len(values), freq="ME")
+    return panel.Panel.from_frame(pd.DataFrame({"Gold Sleeve": values}, index=idx))
+
+
+def test_flat_prior_first_posterior_equals_return_shock():
+    # Common practice (no source): with a flat prior the first gain is 1, so the posterior variance
+    # of the premium after the first return equals the return-shock variance: 20% annual return
+    # volatility (sqrt(0.04/12) = 5.77% a month) gives a first posterior sd of 5.77% a month,
+    # i.e. 20% once annualised by sqrt(12).
+    data = one_asset([0.031, -0.012, 0.020, 0.004])
+    spec = panel.ModelSpec(fixed={"premium_vol": 0.02, "return_vol": 0.20})
+    res = panel.fit(data, spec)
+    first = res.estimates.iloc[0]
+    assert res.status == "fixed"
+    assert first["filtered_mean"] == pytest.approx(0.031, abs=1e-15)        # gain 1
+    assert first["filtered_std"] == pytest.approx(math.sqrt(0.04 / 12), rel=1e-12)
+    assert first["filtered_std"] * math.sqrt(12) == pytest.approx(0.20, rel=1e-12)
+
+
+def test_known_parameter_filter_two_steps_by_hand():
+    # Hand computation of the textbook local level filter (Harvey 1989 §3.3.1 recursions) with an
+    # informative prior: premium 6% +- 3% a year, premium innovation vol 2% a year, return vol 20%.
+    h = 0.20 ** 2 / 12
+    q = 0.02 ** 2 / 12
+    m0, p0 = 0.06 / 12, (0.03 / 12) ** 2
+    y1, y2 = 0.02, -0.01
+    f1 = p0 + h
+    k1 = p0 / f1
+    m1, p1 = m0 + k1 * (y1 - m0), p0 * (1 - k1)
+    p2_pred = p1 + q
+    f2 = p2_pred + h
+    k2 = p2_pred / f2
+    m2, p2 = m1 + k2 * (y2 - m1), p2_pred * (1 - k2)
+    ll = -0.5 * (2 * math.log(2 * math.pi) + math.log(f1) + (y1 - m0) ** 2 / f1
+                 + math.log(f2) + (y2 - m1) ** 2 / f2)
+    spec = panel.ModelSpec(fixed={"premium_vol": 0.02, "return_vol": 0.20},
+                           initial_premium=panel.InitialPremium(mean=0.06, vol=0.03))
+    res = panel.fit(one_asset([y1, y2]), spec)
+    est = res.estimates
+    assert est["filtered_mean"].tolist() == pytest.approx([m1, m2], rel=1e-13)
+    assert (est["filtered_std"] ** 2).tolist() == pytest.approx([p1, p2], rel=1e-13)
+    assert est["predictive_mean"].iloc[1] == pytest.approx(m1, rel=1e-13)
+    assert est["predictive_std"].iloc[1] ** 2 == pytest.approx(f2, rel=1e-13)
+    assert res.loglik == pytest.approx(ll, rel=1e-13)
+
+
+@pytest.mark.parametrize("kwargs,needle", [
+    ({"premium_factors": 7}, "premium_factors must be 0..5"),
+    ({"premium_factors": 2}, "not identified with 3 assets"),
+    ({"return_shocks": "banded"}, "return_shocks must be one of"),
+    ({"fixed": {"premium_drift": 0.1}}, "cannot fix 'premium_drift'"),
+    ({"fixed": {"premium_vol:Copper": 0.1}}, "no asset 'Copper'"),
+    ({"return_shocks": "full", "fixed": {"return_vol": 0.1}}, "return_vol can be fixed only"),
+    ({"max_premium_vol": -1.0}, "max_premium_vol must be a positive"),
+])
+def test_bad_settings_give_one_line(kwargs, needle):
+    idx = pd.date_range("2001-01-31", periods=30, freq="ME")
+    frame = pd.DataFrame(np.random.default_rng(0).normal(0, 0.04, (30, 3)), index=idx,
+                         columns=["Nordic Equity", "Gold Sleeve", "EM Local Bonds"])
+    with pytest.raises(SpecError) as err:
+        panel.fit(panel.Panel.from_frame(frame), panel.ModelSpec(**kwargs))
+    assert needle in str(err.value) and "\n" not in str(err.value)
+
+
+def test_upper_bound_on_premium_volatility_is_reported():
+    # Invented single sleeve with a visible premium drift: the bound must bind and be reported.
+    rng = np.random.default_rng(8)
+    mu = np.cumsum(rng.normal(0, 0.01, 120))
+    data = one_asset(mu + rng.normal(0, 0.02, 120), start="2010-01-31")
+    res = panel.fit(data, panel.ModelSpec(max_premium_vol=0.01, std_errors="never"))
+    assert math.sqrt(res.params.Sigma[0, 0] * 12) <= 0.01 * (1 + 1e-9)
+    assert res.status == "boundary" and not res.converged
+    assert "upper bound" in res.message
+
+
+def test_zero_premium_volatility_is_a_reported_boundary():
+    # Pure noise around a constant premium (invented): ML puts the premium innovation variance at 0.
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    res = panel.fit(data, panel.ModelSpec(std_errors="never"))
+    assert res.status == "boundary" and not res.converged
+    assert "at zero" in res.message
+
+
+def test_premium_prior_keeps_the_premium_volatility_off_zero():
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    res = panel.fit(data, panel.ModelSpec(premium_prior=panel.Prior(vol=0.01, weight=24),
+                                          std_errors="never"))
+    assert res.status == "converged"
+    assert math.sqrt(res.params.q[0] * 12) > 0.002
+
+
+def test_spec_round_trip_and_cross_section_probabilities():
+    spec = panel.ModelSpec(premium_factors=1, fixed={"return_vol": 0.15},
+                           premium_prior=panel.Prior(0.02, 12), vol_scale=panel.VolScale("ewma", 6.0))
+    assert panel.ModelSpec.from_dict(spec.to_dict()) == spec
+    cs = panel.CrossSection(date=pd.Timestamp("2020-01-31"), kind="smoothed", assets=("A", "B"),
+                            mean=np.array([0.01, 0.0]), cov=np.array([[1e-4, 5e-5], [5e-5, 1e-4]]))
+    # P(A > B) = Phi(0.01 / sqrt(1e-4 + 1e-4 - 1e-4)) = Phi(1) (normal distribution, any table).
+    assert cs.prob_greater.loc["A", "B"] == pytest.approx(0.8413447460685429, rel=1e-12)
+    assert cs.prob_positive[0] == pytest.approx(0.8413447460685429, rel=1e-12)
