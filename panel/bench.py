@@ -1,0 +1,253 @@
+"""Side-by-side benchmark: ``python -m panel.bench [--json PATH] [--quick] [--threads N]``.
+
+Every ratio compares two codes timed in the SAME worker process on the SAME simulated panel
+(invented data, fixed seeds), so a slow or busy machine changes both sides alike:
+
+(a) our E-step (``panel.kalman.paths.estep``, method "auto") against statsmodels' general
+    state-space smoother (``MLEModel`` with design I, transition I, state_cov Sigma, obs_cov H,
+    exact diffuse initialisation) on the identical model; the log-likelihoods must agree;
+(b) one EM iteration of ours (E-step + ``panel.model.mstep.mstep``) against one EM iteration of
+    statsmodels' ``DynamicFactorMQ(factors=1, factor_orders=1, idiosyncratic_ar1=True)`` — a
+    different model (AR(1) idiosyncratic noise, no premium random walks), so indicative only;
+(c) our full fit to convergence (``panel.fit``): time, E-steps, final log-likelihood.
+Scale rows (ours alone, each in its own subprocess for its own peak RSS): N=500, T=1200
+balanced; N=200, T=1200 staircase.
+
+Workers run with ``OPENBLAS_NUM_THREADS`` (and OMP/MKL) set to ``--threads`` (default 1): on small
+matrices multi-threaded BLAS can be many times slower than one thread, for both sides.
+statsmodels is imported lazily (a test/benchmark dependency only).  Timing never fails anything.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import time
+
+import numpy as np
+
+FULL = {"compare": [(30, 600, "balanced"), (30, 600, "staircase"), (100, 600, "balanced"),
+                    (100, 600, "staircase")],
+        "scale": [(500, 1200, "balanced"), (200, 1200, "staircase")], "dfm_iters": (2, 6),
+        "time_budget": 900.0}
+QUICK = {"compare": [(6, 60, "balanced"), (6, 60, "staircase")],
+         "scale": [(20, 120, "balanced")], "dfm_iters": (1, 2), "time_budget": 60.0}
+
+
+def simulate(N: int, T: int, pattern: str, seed: int = 20240601):
+    """Invented monthly excess-return panel from the model itself, decimal per month.
+
+    Returns (DataFrame dates x assets, Sigma, H).  "staircase": asset i enters at date
+    ``round(i T / (2 N))`` (entries spread over the first half), balanced afterwards.
+    """
+    import pandas as pd
+
+    rng = np.random.default_rng(seed + 7919 * N + T + (pattern == "staircase"))
+    lam = rng.normal(0.0006, 0.0003, size=(N, 1))
+    Sigma = lam @ lam.T + np.diag(rng.uniform(0.0002, 0.0005, N) ** 2)
+    B = rng.normal(0.035, 0.01, size=(N, 1))
+    H = B @ B.T + np.diag(rng.uniform(0.02, 0.05, N) ** 2)
+    mu = 0.005 + np.cumsum(rng.multivariate_normal(np.zeros(N), Sigma, size=T), axis=0)
+    Y = mu + rng.multivariate_normal(np.zeros(N), H, size=T)
+    if pattern == "staircase":
+        for i in range(N):
+            Y[: int(round(i * T / (2 * N))), i] = np.nan
+    dates = pd.date_range("1950-01-31", periods=T, freq="ME")
+    return pd.DataFrame(Y, index=dates, columns=[f"A{i:03d}" for i in range(N)]), Sigma, H
+
+
+def _best(fn, repeats):
+    times = []
+    out = None
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        out = fn()
+        times.append(time.perf_counter() - t0)
+    return min(times), out
+
+
+def _statsmodels_smoother(Y, Sigma, H):
+    import warnings
+
+    from statsmodels.tsa.statespace.mlemodel import MLEModel
+
+    N = Y.shape[1]
+    mod = MLEModel(Y, k_states=N)
+    mod.ssm["design"] = np.eye(N)
+    mod.ssm["transition"] = np.eye(N)
+    mod.ssm["selection"] = np.eye(N)
+    mod.ssm["state_cov"] = Sigma
+    mod.ssm["obs_cov"] = H
+    mod.ssm.initialize_diffuse()
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return mod.ssm.smooth()
+
+
+def _dfm_iteration(Y, iters):
+    """Seconds per EM iteration of DynamicFactorMQ: (t(k2) - t(k1)) / (k2 - k1) removes set-up."""
+    import warnings
+
+    from statsmodels.tsa.statespace.dynamic_factor_mq import DynamicFactorMQ
+
+    def model(data):
+        return DynamicFactorMQ(data, factors=1, factor_orders=1, idiosyncratic_ar1=True)
+
+    times = []
+    for k in iters:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            mod = model(Y)
+            # its default start (PCA) refuses leading missing values: start from the balanced rows
+            start = model(Y[~np.isnan(Y).any(axis=1)]).start_params if np.isnan(Y).any() else None
+            t0 = time.perf_counter()
+            mod.fit(start_params=start, maxiter=k, tolerance=0.0, disp=False)
+            times.append(time.perf_counter() - t0)
+    k1, k2 = iters
+    return max((times[1] - times[0]) / (k2 - k1), times[1] / k2 / 10)
+
+
+def _ours(frame, time_budget, want_iteration=True):
+    """(E-step s, EM iteration s, report s, fit dict) for our code on ``frame``."""
+    import panel
+    from panel.kalman import paths
+    from panel.model import mstep as ms
+    from panel.model.fit import _Problem
+    from panel.model.start import starting_values
+
+    pan = panel.Panel.from_frame(frame)
+    spec = panel.ModelSpec(time_budget=time_budget)
+    prob = _Problem(pan, spec)
+    p0 = starting_values(prob.Y, prob.rs)
+    floor = ms.VAR_FLOOR * float(np.mean(np.diag(p0.H)))
+    prob.estep(p0)                                   # warm-up (memoised basis), as inside a fit
+    out = {"method": paths.choose(prob.Y, "auto", prob.s2)}
+    out["estep_s"], _ = _best(lambda: prob.estep(p0), 3)
+    if want_iteration:
+        out["em_iter_s"], _ = _best(
+            lambda: ms.mstep(prob.estep(p0), p0, prob.rs, floor, prob.sigma_prior, prob.h_prior), 3)
+    out["report_s"], _ = _best(lambda: paths.report(prob.Y, p0.Sigma, p0.H, prob.s2, prob.init,
+                                                    Lambda=p0.Lambda), 1)
+    t0 = time.perf_counter()
+    res = panel.fit(pan, spec)
+    out.update(fit_s=time.perf_counter() - t0, fit_esteps=int(res.n_iter),
+               fit_loglik=float(res.loglik), fit_status=res.status)
+    return out
+
+
+def run_task(task: dict) -> dict:
+    """One benchmark row (run inside a worker process)."""
+    import resource
+
+    N, T, pattern = task["N"], task["T"], task["pattern"]
+    frame, Sigma, H = simulate(N, T, pattern)
+    Y = frame.to_numpy()
+    row = {"N": N, "T": T, "pattern": pattern}
+    if task["kind"] == "compare":
+        from panel.kalman import paths
+
+        paths.estep(Y, Sigma, H, None, None, "auto")
+        row["estep_true_s"], est = _best(lambda: paths.estep(Y, Sigma, H, None, None, "auto"), 5)
+        _statsmodels_smoother(Y[:3, :2], Sigma[:2, :2], H[:2, :2])    # its one-time set-up
+        row["sm_smoother_s"], res = _best(lambda: _statsmodels_smoother(Y, Sigma, H), 1)
+        row["loglik"], row["sm_loglik"] = float(est.loglik), float(res.llf)
+        row["loglik_rel_diff"] = abs(est.loglik - res.llf) / abs(res.llf)
+        row["smoother_ratio"] = row["sm_smoother_s"] / row["estep_true_s"]
+        try:
+            row["dfmq_iter_s"] = _dfm_iteration(Y, tuple(task["dfm_iters"]))
+        except (np.linalg.LinAlgError, ValueError) as exc:   # statsmodels' own failure: record it
+            row["dfmq_iter_s"], row["dfmq_error"] = None, f"{type(exc).__name__}: {exc}"
+        row.update(_ours(frame, task["time_budget"]))
+        row["em_ratio"] = None if row["dfmq_iter_s"] is None else row["dfmq_iter_s"] / row["em_iter_s"]
+    else:
+        row.update(_ours(frame, task["time_budget"], want_iteration=False))
+    row["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+    return row
+
+
+def _spawn(task: dict, threads: int) -> dict:
+    env = dict(os.environ)
+    for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        env[var] = str(threads)
+    proc = subprocess.run([sys.executable, "-m", "panel.bench", "--worker", json.dumps(task)],
+                          env=env, capture_output=True, text=True)
+    if proc.returncode != 0:
+        return {**task, "error": proc.stderr.strip().splitlines()[-1] if proc.stderr else "failed"}
+    return json.loads(proc.stdout.strip().splitlines()[-1])
+
+
+def run(quick: bool = False, threads: int = 1) -> dict:
+    """Run every row (each in a worker subprocess) and return the JSON-able results."""
+    cfg = QUICK if quick else FULL
+    out = {"meta": {"quick": quick, "threads": threads, "python": sys.version.split()[0],
+                    "numpy": np.__version__, "cpus": os.cpu_count()},
+           "compare": [], "scale": []}
+    for kind in ("compare", "scale"):
+        for N, T, pattern in cfg[kind]:
+            task = {"kind": kind, "N": N, "T": T, "pattern": pattern,
+                    "dfm_iters": cfg["dfm_iters"], "time_budget": cfg["time_budget"]}
+            out[kind].append(_spawn(task, threads))
+    return out
+
+
+def format_table(res: dict) -> str:
+    """Compact text table of :func:`run`'s results."""
+    lines = [f"riskprem benchmark (BLAS threads={res['meta']['threads']}, "
+             f"cpus={res['meta']['cpus']}); ratios are statsmodels time / ours, same process",
+             "(a) E-step vs statsmodels smoother, identical model at the true parameters",
+             f"{'N':>4} {'T':>5} {'pattern':<10} {'method':<8} {'ours_s':>9} {'sm_s':>9} "
+             f"{'ratio':>8} {'loglik_rel':>10}"]
+    for r in res["compare"]:
+        if "error" in r:
+            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} ERROR {r['error']}")
+            continue
+        lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['method']:<8} "
+                     f"{r['estep_true_s']:>9.4f} {r['sm_smoother_s']:>9.3f} "
+                     f"{r['smoother_ratio']:>8.0f} {r['loglik_rel_diff']:>10.1e}")
+    lines += ["(b) one EM iteration vs DynamicFactorMQ(1 factor, AR(1) idiosyncratic) — "
+              "different models, indicative",
+              f"{'N':>4} {'T':>5} {'pattern':<10} {'ours_s':>9} {'dfmq_s':>9} {'ratio':>8}"]
+    for r in res["compare"]:
+        if "error" in r:
+            continue
+        if r["dfmq_iter_s"] is None:
+            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['em_iter_s']:>9.4f} "
+                         f"  statsmodels failed: {r['dfmq_error'][:60]}")
+        else:
+            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['em_iter_s']:>9.4f} "
+                         f"{r['dfmq_iter_s']:>9.3f} {r['em_ratio']:>8.0f}")
+    lines += ["(c) our full fit (panel.fit, default ModelSpec) and scale rows (ours alone)",
+              f"{'N':>4} {'T':>5} {'pattern':<10} {'estep_s':>9} {'report_s':>9} {'fit_s':>9} "
+              f"{'E-steps':>8} {'status':<12} {'loglik':>14} {'peakRSS_MB':>10}"]
+    for r in res["compare"] + res["scale"]:
+        if "error" in r:
+            continue
+        lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['estep_s']:>9.4f} "
+                     f"{r['report_s']:>9.3f} {r['fit_s']:>9.2f} {r['fit_esteps']:>8d} "
+                     f"{r['fit_status']:<12} {r['fit_loglik']:>14.4f} {r['peak_rss_mb']:>10.0f}")
+    return "\n".join(lines)
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(prog="python -m panel.bench", description=__doc__.splitlines()[0])
+    ap.add_argument("--json", metavar="PATH", help="also write the results as JSON")
+    ap.add_argument("--quick", action="store_true", help="small sizes (smoke test)")
+    ap.add_argument("--threads", type=int, default=1, help="BLAS threads in the workers")
+    ap.add_argument("--worker", help=argparse.SUPPRESS)
+    args = ap.parse_args(argv)
+    if args.worker:
+        print(json.dumps(run_task(json.loads(args.worker))))
+        return 0
+    res = run(quick=args.quick, threads=args.threads)
+    print(format_table(res))
+    if args.json:
+        with open(args.json, "w") as fh:
+            json.dump(res, fh, indent=1)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,29 @@
+"""Smoke test of the side-by-side benchmark (``python -m panel.bench --quick``): it runs, writes
+the expected JSON and our log-likelihood equals statsmodels' exact diffuse one on the identical
+model (outside source: statsmodels' MLEModel smoother).  Timings are reported, never asserted."""
+
+import json
+import subprocess
+import sys
+
+
+def test_quick_benchmark_json(tmp_path):
+    out = tmp_path / "bench.json"
+    proc = subprocess.run([sys.executable, "-m", "panel.bench", "--quick", "--json", str(out)],
+                          capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert "E-step vs statsmodels smoother" in proc.stdout
+    res = json.loads(out.read_text())
+    assert set(res) == {"meta", "compare", "scale"}
+    assert {r["pattern"] for r in res["compare"]} == {"balanced", "staircase"}
+    for row in res["compare"]:
+        assert "error" not in row, row
+        for key in ("estep_true_s", "sm_smoother_s", "smoother_ratio", "loglik", "sm_loglik",
+                    "dfmq_iter_s", "em_iter_s", "em_ratio", "estep_s", "report_s", "fit_s",
+                    "fit_esteps", "fit_loglik", "fit_status", "method", "peak_rss_mb"):
+            assert key in row
+        assert row["method"] == "stretch"
+        assert row["loglik_rel_diff"] < 1e-8
+    for row in res["scale"]:
+        assert "error" not in row, row
+        assert row["peak_rss_mb"] > 0 and row["fit_esteps"] >= 1
