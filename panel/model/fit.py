@@ -216,11 +216,12 @@ def _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, 
         "smoothed_mean": out.smoothed_mean[ti, ai], "smoothed_std": np.sqrt(out.smoothed_var[ti, ai]),
         "predictive_mean": out.predicted_mean[ti, ai], "predictive_std": np.sqrt(ret_var[ti, ai]),
         "std_innovation": z[ti, ai]})
+    # The factor is known (variance 0) at the first date: clip rounding just below zero.
+    ffs, fss = (np.sqrt(np.maximum(v, 0.0)) for v in (out.factor_filtered_var, out.factor_smoothed_var))
     fac = [pd.DataFrame({"date": panel.dates, "factor": j + 1,
-                         "filtered_mean": out.factor_filtered_mean[:, j],
-                         "filtered_std": np.sqrt(out.factor_filtered_var[:, j]),
-                         "smoothed_mean": out.factor_smoothed_mean[:, j],
-                         "smoothed_std": np.sqrt(out.factor_smoothed_var[:, j])}) for j in range(rs.k)]
+                         "filtered_mean": out.factor_filtered_mean[:, j], "filtered_std": ffs[:, j],
+                         "smoothed_mean": out.factor_smoothed_mean[:, j], "smoothed_std": fss[:, j]})
+           for j in range(rs.k)]
     factors = pd.concat(fac, ignore_index=True) if fac else pd.DataFrame(
         columns=["date", "factor", "filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std"])
     rows = inference.parameter_rows(assets, rs.k, rs.r, rs.structure)
