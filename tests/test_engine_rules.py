@@ -114,3 +114,38 @@ def test_spec_round_trip_and_cross_section_probabilities():
     # P(A > B) = Phi(0.01 / sqrt(1e-4 + 1e-4 - 1e-4)) = Phi(1) (normal distribution, any table).
     assert cs.prob_greater.loc["A", "B"] == pytest.approx(0.8413447460685429, rel=1e-12)
     assert cs.prob_positive[0] == pytest.approx(0.8413447460685429, rel=1e-12)
+
+
+def test_ewma_volatility_scale_uses_only_past_data():
+    from panel.model.start import volatility_scale
+
+    rng = np.random.default_rng(3)
+    Y = rng.normal(0, 0.04, (60, 3))
+    base = volatility_scale(Y, panel.VolScale("ewma", 6.0))
+    Y2 = Y.copy()
+    Y2[40:] *= 5.0                                   # a change from date 40 on ...
+    moved = volatility_scale(Y2, panel.VolScale("ewma", 6.0))
+    np.testing.assert_array_equal(base[:41], moved[:41])  # ... leaves s_t for t <= 40 alone
+    assert moved[45] > 2.0 * base[45]
+
+
+def test_fit_cross_section_matches_kernel_covariance():
+    # The fitted result's cross-section equals the dense smoother's joint covariance at that date.
+    from panel.kalman.dense import dense_smoother
+
+    rng = np.random.default_rng(12)
+    idx = pd.date_range("2005-01-31", periods=90, freq="ME")
+    frame = pd.DataFrame(0.004 + rng.normal(0, 0.04, (90, 4)), index=idx,
+                         columns=["Nordic Equity", "Gold Sleeve", "EM Local Bonds", "Carry FX"])
+    frame.iloc[:30, 3] = np.nan
+    res = panel.fit(panel.Panel.from_frame(frame),
+                    panel.ModelSpec(premium_factors=1, premium_prior=panel.Prior(0.02, 24),
+                                    std_errors="never"))
+    cs = res.cross_section("2007-03-31", kind="filtered")
+    t = idx.get_loc(pd.Timestamp("2007-03-31"))
+    ref = dense_smoother(frame.to_numpy(), res.params.Sigma, res.params.H, cov_at=(t,))
+    assert cs.assets == ("Nordic Equity", "Gold Sleeve", "EM Local Bonds")
+    np.testing.assert_allclose(cs.cov, ref.covariances[t]["filtered"][:3, :3], atol=1e-14)
+    np.testing.assert_allclose(cs.mean, ref.filtered_mean[t, :3], atol=1e-14)
+    table = cs.table()
+    assert list(table["mean"]) == sorted(table["mean"], reverse=True)

@@ -178,6 +178,13 @@ def _boundary_status(p, rs, floor, assets, status, message):
         names = ", ".join(np.array(assets)[at_zero][:5])
         notes.append(f"own premium innovation variance at zero (boundary) for {names}; "
                      "a premium prior or a fixed premium_vol keeps it away")
+    if p.psi is not None:
+        free_psi = np.ones(p.n_assets, bool) if rs.fixed_psi is None else np.isnan(rs.fixed_psi)
+        heywood = free_psi & (p.psi <= floor * 1.0001)
+        if heywood.any():
+            names = ", ".join(np.array(assets)[heywood][:5])
+            notes.append(f"own return-shock variance at zero (boundary) for {names}; "
+                         "use fewer return factors or return_shocks='full'")
     if rs.max_sigma_diag is not None:
         capped = np.diag(p.Sigma) >= rs.max_sigma_diag * (1 - 1e-8)
         if capped.any():
