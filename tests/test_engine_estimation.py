@@ -147,3 +147,26 @@ def test_simulated_panel_bands_cover_and_loadings_recovered():
     est_lam = res.params.Lambda[:, 0]
     assert abs(np.corrcoef(est_lam, lam[:, 0])[0, 1]) > 0.9
     assert np.median(np.abs(np.abs(est_lam) / lam[:, 0] - 1)) < 0.25
+
+
+def test_economic_discipline_on_twelve_industries():
+    # Data: the Fama-French 12 industry portfolios shipped in linearmodels.datasets.french (excess
+    # of RF), 1949-2017.  Unconstrained Gaussian ML swings the common premium by far more than is
+    # plausible and piles single assets up at zero own premium volatility (Shephard & Harvey 1990,
+    # J. Time Series Analysis 11(4)); a weak premium prior (MAP-EM) keeps both in range.
+    from linearmodels.datasets import french
+
+    d = french.load()
+    idx = pd.DatetimeIndex(d["dates"]) + pd.offsets.MonthEnd(0)
+    cols = ["NoDur", "Durbl", "Manuf", "Enrgy", "Chems", "BusEq", "Telcm", "Utils", "Shops",
+            "Hlth", "Money", "Other"]
+    data = panel.Panel.from_frame(pd.DataFrame({c: (d[c] - d["RF"]).to_numpy() for c in cols}, index=idx))
+    ml = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never"))
+    assert ml.status == "boundary" and "own premium innovation variance at zero" in ml.message
+    assert np.median(np.abs(ml.params.Lambda)) > 0.003          # > 0.3% a month
+    assert (np.sqrt(ml.params.q * 12) < 1e-4).sum() >= 3        # pile-up at zero
+    mapfit = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never",
+                                             premium_prior=panel.Prior(vol=0.01, weight=120)))
+    assert mapfit.converged
+    assert np.median(np.abs(mapfit.params.Lambda)) < 0.001
+    assert np.all(np.sqrt(mapfit.params.q * 12) > 0.002)
