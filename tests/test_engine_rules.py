@@ -140,7 +140,7 @@ def test_fit_cross_section_matches_kernel_covariance():
     frame.iloc[:30, 3] = np.nan
     res = panel.fit(panel.Panel.from_frame(frame),
                     panel.ModelSpec(premium_factors=1, premium_prior=panel.Prior(0.02, 24),
-                                    std_errors="never"))
+                                    std_errors="never", max_iter=40))
     cs = res.cross_section("2007-03-31", kind="filtered")
     t = idx.get_loc(pd.Timestamp("2007-03-31"))
     ref = dense_smoother(frame.to_numpy(), res.params.Sigma, res.params.H, cov_at=(t,))
