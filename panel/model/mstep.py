@@ -135,19 +135,23 @@ def mstep(est, p: Params, rs: ResolvedSpec, floor: float, sigma_prior: PriorTerm
 
 
 def _cap_premium(lam, q, cap, free_q):
-    """Scale an asset's premium innovation (loadings and own variance) down to the bound.
+    """Scale an asset's premium innovation down to the bound ``Sigma_ii <= cap``.
 
-    With k = 0 this is the exact constrained M-step (the scalar objective is unimodal); with
-    factors it is a projection, and the EM loop accepts it only if the objective does not fall.
+    Free own variances are scaled with the loadings; a fixed own variance stays and only the
+    loadings shrink.  With k = 0 this is the exact constrained M-step (the scalar objective is
+    unimodal); with factors it is a projection, and the EM loop accepts it only if the objective
+    does not fall.
     """
-    total = (lam ** 2).sum(axis=1) + q
-    over = total > cap
+    common = (lam ** 2).sum(axis=1)
+    over = common + q > cap
     if not over.any():
         return lam, q
-    c = np.where(over, cap / total, 1.0)
-    lam = lam * np.sqrt(c)[:, None]
-    q = np.where(free_q | over, q * c, q)
-    return lam, q
+    c_free = cap / (common + q)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c_fixed = np.where(common > 0, np.maximum(cap - q, 0.0) / common, 1.0)
+    c_lam = np.where(over, np.where(free_q, c_free, c_fixed), 1.0)
+    q = np.where(over & free_q, q * c_free, q)
+    return lam * np.sqrt(c_lam)[:, None], q
 
 
 def log_prior(p: Params, sigma_prior: PriorTerms, h_prior: PriorTerms) -> float:

@@ -208,6 +208,8 @@ class ModelSpec:
         if self.max_iter < 1 or not self.tol > 0:
             raise SpecError("max_iter must be >= 1 and tol > 0")
         bound = None if self.max_premium_vol is None else self.max_premium_vol ** 2 / ppy
+        if bound is not None and fixed_q is not None and any(v > bound for v in fixed_q if v == v):
+            raise SpecError("a fixed premium_vol exceeds max_premium_vol; lower one of them")
         return ResolvedSpec(k=k, structure=structure, r=r if structure == "factor" else 0, ppy=ppy,
                             fixed_q=fixed_q, fixed_psi=fixed_psi, max_sigma_diag=bound)
 
