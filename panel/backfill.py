@@ -118,6 +118,9 @@ def cutoff_dates(panel: Panel, start=None, end=None, every: int = 1) -> pd.Datet
         raise BackfillError(f"every must be a whole number >= 1, got {every!r}")
     lo = panel.dates[0] if start is None else _date(start, "start")
     hi = panel.dates[-1] if end is None else _date(end, "end")
+    if lo > hi and end is None:
+        raise BackfillError(f"start {lo.date()} is after the dataset's last date {hi.date()}; give an "
+                            "earlier start")
     if lo > hi:
         raise BackfillError(f"start {lo.date()} is after end {hi.date()}; swap them")
     dates = panel.dates[(panel.dates >= lo) & (panel.dates <= hi)][::int(every)]

@@ -14,6 +14,10 @@ import signal
 import numpy as np
 
 
+#: How long to try reaching a Dask scheduler before giving up.
+DASK_CONNECT_TIMEOUT = "10s"
+
+
 class BackfillError(ValueError):
     """A backfill (or a look-up of one) that cannot be done as asked; the message is one line.
     Import it from :mod:`panel.backfill`."""
@@ -78,10 +82,10 @@ class _DaskPool:
     """Fits submitted to an existing Dask distributed scheduler."""
 
     def __init__(self, address: str, workers: int | None):
-        from distributed import Client
+        from distributed import Client, as_completed
 
         try:
-            self.client = Client(address, timeout="10s", set_as_default=False)
+            self.client = Client(address, timeout=DASK_CONNECT_TIMEOUT, set_as_default=False)
         except (OSError, TimeoutError, ValueError) as error:
             first = (str(error).strip().splitlines() or [type(error).__name__])[0]
             raise BackfillError(f"cannot reach the Dask scheduler at {address}: {first}; check the "
@@ -90,16 +94,17 @@ class _DaskPool:
         self.capacity = max(1, workers or threads)
         self.where = f"Dask scheduler {address} ({threads} worker threads)"
         self.submitted: list = []
+        self.finished = as_completed(loop=self.client.loop)
 
     def submit(self, fn, arg):
         future = self.client.submit(fn, arg, pure=False)
         self.submitted.append(future)
+        self.finished.add(future)
         return future
 
     def wait_first(self, futures):
-        from distributed import wait
-
-        return list(wait(list(futures), return_when="FIRST_COMPLETED").done)
+        first = next(self.finished)            # blocks until one is done
+        return [first, *self.finished.next_batch(block=False)]
 
     def close(self, abort: bool = False) -> None:
         if abort:

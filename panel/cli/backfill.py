@@ -1,0 +1,454 @@
+"""``backfill``, ``revisions``, ``evaluate``: vintages at past cut-offs and what they say.
+
+The work is done by :mod:`panel.backfill` and :mod:`panel.evaluation`; this module parses options,
+shows progress and prints.  The three commands take the model options of ``riskprem fit`` (the
+settings of a backfill); ``revisions`` and ``evaluate`` use them, or ``--key``, to pick the backfill
+when a dataset has several.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from enum import Enum
+from typing import Annotated
+
+import typer
+
+from panel.cli import output
+from panel.cli.common import (CsvFlag, JsonFlag, State, info, parse_date, progress_enabled, state,
+                              store_for, user_errors)
+from panel.cli.fitting import Shocks, model_spec
+
+# ---------------------------------------------------------------------------------------------
+# options shared by the three commands
+
+DataOpt = Annotated[str, typer.Option("--data", help="A stored dataset: name or hash (prefix).",
+                                      show_default=False)]
+WindowOpt = Annotated[str | None, typer.Option(
+    "--window", metavar="expanding|rolling:M",
+    help="Estimation window of each vintage: all data up to the cut-off (expanding, the default) or "
+         "its last M periods.", show_default=False)]
+KeyOpt = Annotated[str | None, typer.Option(
+    "--key", metavar="PREFIX", help="The backfill to use, by (a prefix of) its key, when the dataset has "
+                                    "several (instead of repeating its settings).", show_default=False)]
+PremiumFactorsOpt = Annotated[int | None, typer.Option(
+    "--premium-factors", help="Common premium factors k (0 = independent local levels); default 1 with "
+                              "3+ assets.", show_default=False)]
+ReturnShocksOpt = Annotated[Shocks | None, typer.Option(
+    "--return-shocks", help="Structure of the return-shock covariance; default factor.", show_default=False)]
+ReturnFactorsOpt = Annotated[int, typer.Option("--return-factors", help="Return factors r for "
+                                               "--return-shocks factor.")]
+VolScaleOpt = Annotated[str, typer.Option(
+    "--vol-scale", metavar="none|ewma:HALFLIFE",
+    help="Ex-ante volatility scale of the return shocks: an EWMA of past squared returns with this "
+         "half-life in periods.")]
+FixOpt = Annotated[list[str] | None, typer.Option(
+    "--fix", metavar="NAME=VALUE", help="Hold a volatility fixed, annualised %: premium_vol=2, "
+                                        "return_vol=15, or premium_vol:ASSET=1.5. Repeatable.",
+    show_default=False)]
+MaxPremiumVolOpt = Annotated[float | None, typer.Option(
+    "--max-premium-vol", metavar="PCT", help="Upper bound on each premium's innovation volatility, "
+                                             "annualised %.", show_default=False)]
+PremiumPriorOpt = Annotated[str | None, typer.Option(
+    "--premium-prior", metavar="VOL:WEIGHT", help="Prior on the premium innovations: volatility "
+                                                  "(annualised %) worth WEIGHT pseudo-periods.",
+    show_default=False)]
+InitialPremiumOpt = Annotated[str | None, typer.Option(
+    "--initial-premium", metavar="MEAN:VOL", help="Prior for each premium at its first observation, "
+                                                  "annualised % (default: diffuse).", show_default=False)]
+MaxIterOpt = Annotated[int | None, typer.Option("--max-iter", min=1, help="Most EM iterations per "
+                                                "vintage (default 5000).", show_default=False)]
+TimeBudgetOpt = Annotated[float | None, typer.Option(
+    "--time-budget", metavar="SECONDS", help="Stop each vintage's estimation after this long.",
+    show_default=False)]
+
+
+class StdErrors(str, Enum):
+    auto = "auto"
+    always = "always"
+    never = "never"
+
+
+StdErrorsOpt = Annotated[StdErrors | None, typer.Option(
+    "--std-errors", help="Parameter standard errors for each vintage (auto: when the free parameters "
+                         "number at most 150). Default auto.", show_default=False)]
+
+
+class SeKind(str, Enum):
+    plain = "plain"
+    newey_west = "newey-west"
+
+
+def _spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol, premium_prior,
+          initial_premium, max_iter, time_budget, std_errors):
+    spec = model_spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
+                      premium_prior, initial_premium, max_iter, time_budget)
+    if std_errors is not None:
+        spec = dataclasses.replace(spec, std_errors=std_errors.value)
+    return spec
+
+
+def _settings_given(window, premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
+                    premium_prior, initial_premium, max_iter, time_budget, std_errors) -> bool:
+    optional = (window, premium_factors, return_shocks, fix, max_premium_vol, premium_prior, initial_premium,
+                max_iter, time_budget, std_errors)
+    return any(v not in (None, []) for v in optional) or return_factors != 1 or \
+        (vol_scale or "none").strip().lower() != "none"
+
+
+def _chosen_backfill(store, data: str, key: str | None, window, settings: tuple, given: bool):
+    """The backfill meant by --key, by the model options, or the dataset's only one."""
+    from panel.backfill import find_backfill
+
+    if key and given:
+        raise typer.BadParameter("give either --key or the backfill's settings, not both", param_hint="--key")
+    if given:
+        return find_backfill(store, data, spec=_spec(*settings), window=window or "expanding")
+    return find_backfill(store, data, key=key)
+
+
+def _ppy(store, backfill) -> int:
+    from panel.data import PERIODS_PER_YEAR
+    from panel.store import list_datasets
+
+    spec_ppy = (backfill.settings.get("spec") or {}).get("periods_per_year")
+    if spec_ppy:
+        return int(spec_ppy)
+    frame = list_datasets(store)
+    frequency = frame.loc[frame["hash"] == backfill.dataset_hash, "frequency"].iloc[0]
+    return PERIODS_PER_YEAR[str(frequency)]
+
+
+# ---------------------------------------------------------------------------------------------
+# backfill
+
+class _Progress:
+    """The library's progress events on a rich bar with ETA (a terminal) or as note lines."""
+
+    def __init__(self, st: State):
+        self.st = st
+        self.bar = None
+        self.task = None
+
+    def __enter__(self):
+        if progress_enabled(self.st):
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
+
+            self.bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                                TimeElapsedColumn(), TextColumn("eta {task.fields[eta]}"),
+                                console=output.err(), transient=True)
+            self.bar.__enter__()
+        return self
+
+    def __exit__(self, *exc):
+        if self.bar is not None:
+            self.bar.__exit__(*exc)
+
+    def __call__(self, event) -> None:
+        eta = "-" if event.eta_s is None else _duration(event.eta_s)
+        if event.as_of is None:
+            if self.bar is not None:
+                self.task = self.bar.add_task(f"backfill on {event.where}", total=event.total, eta=eta)
+            return
+        text = (f"vintage {output.day(event.as_of)}: run {event.run_id}, {event.status}, {event.n_iter} "
+                f"iterations, {event.fit_s:.1f} s")
+        if self.bar is not None:
+            self.bar.update(self.task, completed=event.done, description=text, eta=eta)
+        else:
+            info(self.st, f"{text} [{event.done}/{event.total}, eta {eta}]")
+
+
+def _duration(seconds: float) -> str:
+    seconds = int(round(seconds))
+    if seconds < 60:
+        return f"{seconds} s"
+    minutes, secs = divmod(seconds, 60)
+    if minutes < 60:
+        return f"{minutes} min {secs:02d} s"
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours} h {minutes:02d} min"
+
+
+def backfill(
+    ctx: typer.Context,
+    data: DataOpt,
+    start: Annotated[str, typer.Option("--start", metavar="DATE", help="First cut-off YYYY-MM-DD (the "
+                                       "dataset's first date on or after it).", show_default=False)],
+    end: Annotated[str | None, typer.Option("--end", metavar="DATE", help="Last cut-off YYYY-MM-DD "
+                                            "(default: the last date).", show_default=False)] = None,
+    every: Annotated[int, typer.Option("--every", min=1, metavar="N", help="Every N-th date from --start "
+                                       "is a cut-off.")] = 1,
+    window: WindowOpt = None,
+    chain: Annotated[int, typer.Option("--chain", min=1, metavar="N", help="Cut-offs per warm-start chain: "
+                                       "each vintage starts from the previous cut-off's estimates, the first "
+                                       "of each chain cold; chains run in parallel.")] = 12,
+    warm_start: Annotated[bool, typer.Option("--warm-start/--no-warm-start", help="Start each vintage "
+                                             "from the previous cut-off's estimates (within its chain).")] = True,
+    workers: Annotated[int | None, typer.Option("--workers", min=1, metavar="N", help="Local worker "
+                                                "processes (default: the CPUs available; 1 = in this "
+                                                "process); with --scheduler, fits in flight.",
+                                                show_default=False)] = None,
+    scheduler: Annotated[str | None, typer.Option("--scheduler", metavar="ADDRESS", help="Run the fits on "
+                                                  "an existing Dask cluster, e.g. tcp://10.0.0.5:8786.",
+                                                  show_default=False)] = None,
+    label: Annotated[str | None, typer.Option("--label", help="A note stored with every vintage.",
+                                              show_default=False)] = None,
+    premium_factors: PremiumFactorsOpt = None,
+    return_shocks: ReturnShocksOpt = None,
+    return_factors: ReturnFactorsOpt = 1,
+    vol_scale: VolScaleOpt = "none",
+    fix: FixOpt = None,
+    max_premium_vol: MaxPremiumVolOpt = None,
+    premium_prior: PremiumPriorOpt = None,
+    initial_premium: InitialPremiumOpt = None,
+    max_iter: MaxIterOpt = None,
+    time_budget: TimeBudgetOpt = None,
+    std_errors: StdErrorsOpt = None,
+    as_json: JsonFlag = False,
+) -> None:
+    """Re-estimate the model at each past cut-off and store one vintage per cut-off.
+
+    Each vintage is fitted on the data up to its cut-off only, parameters included (pseudo
+    real-time), and stored in one transaction as soon as it is done.  Cut-offs already stored with
+    the same dataset and settings are skipped, so running the command again resumes an interrupted
+    backfill (Ctrl-C keeps every finished vintage; exit code 130).  Results do not depend on
+    --workers or --scheduler: warm starts follow fixed chains of --chain cut-offs.
+    """
+    from panel.backfill import BackfillInterrupted, default_workers, plan_backfill, run_backfill
+
+    st = state(ctx)
+    parse_date(start, "--start")
+    parse_date(end, "--end")
+    spec = _spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
+                 premium_prior, initial_premium, max_iter, time_budget, std_errors)
+    if workers is None and scheduler is None:
+        workers = default_workers()
+    interrupted = False
+    with store_for(st, write=True) as store, user_errors():
+        plan = plan_backfill(store, data, spec, start=start, end=end, every=every,
+                             window=window or "expanding", chain=chain, warm_start=warm_start, label=label)
+        first, last = plan.vintages[0].as_of, plan.vintages[-1].as_of
+        info(st, f"backfill of {data}: {len(plan.vintages)} cut-offs {output.day(first)} to {output.day(last)} "
+                 f"({plan.window.text}), {len(plan.skipped)} already stored, {len(plan.todo)} to fit")
+        with _Progress(st) as bar:
+            try:
+                report = run_backfill(store, plan, workers=workers, scheduler=scheduler, progress=bar)
+            except BackfillInterrupted as stop:
+                report, interrupted = stop.report, True
+    vintages = [{"as_of": w.as_of, "run_id": w.run_id, "status": w.status, "iterations": w.n_iter,
+                 "fit_s": w.fit_s, "parent_run": w.parent_run} for w in sorted(report.written, key=lambda w: w.as_of)]
+    if as_json:
+        output.emit_json({"dataset": data, "dataset_hash": plan.dataset_hash, "backfill_key": plan.key,
+                          "window": plan.window.text, "chain": plan.chain, "warm_start": plan.warm_start,
+                          "n_cutoffs": len(plan.vintages), "first_cutoff": first, "last_cutoff": last,
+                          "skipped": report.skipped, "fitted": len(report.written), "where": report.where,
+                          "elapsed_s": report.elapsed_s, "interrupted": interrupted, "vintages": vintages,
+                          "settings": {"spec": spec.to_dict(), "window": plan.window.text}})
+    else:
+        _print_backfill(st, data, plan, report, vintages, interrupted)
+    if interrupted:
+        if not as_json:
+            output.error_line(f"interrupted: {len(report.written)} vintage(s) stored this time, each complete; "
+                              "run the same command again to resume")
+        raise typer.Exit(130)
+
+
+def _print_backfill(st, data, plan, report, vintages, interrupted) -> None:
+    first, last = plan.vintages[0].as_of, plan.vintages[-1].as_of
+    output.line(f"backfill of {data} ({output.short_hash(plan.dataset_hash)}): {len(plan.vintages)} cut-offs "
+                f"{output.day(first)} to {output.day(last)}, window {plan.window.text}, key "
+                f"{plan.key[:10]}", style="bold")
+    verb = "stopped after" if interrupted else "fitted"
+    output.line(f"{verb} {len(report.written)} vintage(s) in {_duration(report.elapsed_s)} on {report.where}; "
+                f"{report.skipped} already stored (skipped)")
+    counts: dict[str, int] = {}
+    for v in vintages:
+        counts[v["status"]] = counts.get(v["status"], 0) + 1
+    if counts:
+        output.line("status: " + ", ".join(f"{n} {s}" for s, n in sorted(counts.items())),
+                    style="green" if set(counts) == {"converged"} else "yellow")
+    if vintages and (len(vintages) <= 36 or st.verbose):
+        rows = [(output.day(v["as_of"]), v["run_id"], v["status"], v["iterations"], output.num(v["fit_s"], 1),
+                 "cold" if v["parent_run"] is None else f"warm from run {v['parent_run']}") for v in vintages]
+        output.show(output.table("Vintages stored (one run each, kind backfill)",
+                                 ["as of", "run", "status", "iterations", "seconds", "start"], rows, right_from=1))
+    elif vintages:
+        output.line(f"{len(vintages)} vintages; list them with `riskprem runs --data {data}` (or add -v)")
+    if not plan.todo:
+        output.line("nothing to do: every cut-off is already stored with these settings")
+
+
+# ---------------------------------------------------------------------------------------------
+# revisions
+
+def revisions(
+    ctx: typer.Context,
+    data: DataOpt,
+    asset: Annotated[str, typer.Option("--asset", help="The asset whose premium is followed.",
+                                       show_default=False)],
+    date: Annotated[str, typer.Option("--date", metavar="DATE", help="The date whose premium estimate is "
+                                      "followed across vintages, YYYY-MM-DD.", show_default=False)],
+    key: KeyOpt = None,
+    window: WindowOpt = None,
+    premium_factors: PremiumFactorsOpt = None,
+    return_shocks: ReturnShocksOpt = None,
+    return_factors: ReturnFactorsOpt = 1,
+    vol_scale: VolScaleOpt = "none",
+    fix: FixOpt = None,
+    max_premium_vol: MaxPremiumVolOpt = None,
+    premium_prior: PremiumPriorOpt = None,
+    initial_premium: InitialPremiumOpt = None,
+    max_iter: MaxIterOpt = None,
+    time_budget: TimeBudgetOpt = None,
+    std_errors: StdErrorsOpt = None,
+    as_json: JsonFlag = False,
+    as_csv: CsvFlag = False,
+) -> None:
+    """How the premium estimate of one asset at one date moved across a backfill's vintages.
+
+    One row per vintage covering the date: the filtered (real-time) and smoothed (revised) premium
+    and the revision from the first release, then per asset the mean absolute revision (newest
+    smoothed minus first-release filtered, over the dates at least two vintages cover).  Tables are
+    annualised percent; --json and --csv keep per-period decimals.
+    """
+    from panel.evaluation import revisions as revision_path
+
+    st = state(ctx)
+    day = parse_date(date, "--date")
+    settings = (premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol, premium_prior,
+                initial_premium, max_iter, time_budget, std_errors)
+    given = _settings_given(window, *settings)
+    with store_for(st) as store, user_errors():
+        chosen = _chosen_backfill(store, data, key, window, settings, given)
+        found = revision_path(store, chosen, asset, day)
+        ppy = _ppy(store, chosen)
+    if as_csv:
+        output.emit_csv(found.path)
+        return
+    if as_json:
+        output.emit_json({"dataset": data, "dataset_hash": chosen.dataset_hash, "backfill_key": chosen.key,
+                          "window": chosen.window, "asset": asset, "date": found.date, "units": output.MACHINE_UNITS,
+                          "periods_per_year": ppy, "first_release": {"as_of": found.first_release[0],
+                                                                     "filtered_mean": found.first_release[1]},
+                          "latest": {"as_of": found.latest[0], "smoothed_mean": found.latest[1]},
+                          "total_revision": found.total_revision, "vintages": found.path,
+                          "mean_abs_revision": found.summary, "caution": output.CAUTION})
+        return
+    pct = lambda v, digits=2: output.num(output.premium_pct(v, ppy), digits)  # noqa: E731
+    rows = [(output.day(r.as_of), r.run_id, pct(r.filtered_mean), pct(r.filtered_std), pct(r.smoothed_mean),
+             pct(r.smoothed_std), pct(r.revision), pct(r.change))
+            for r in found.path.itertuples(index=False)]
+    output.show(output.table(
+        f"Premium of {asset} at {output.day(found.date)} across {len(rows)} vintages of backfill "
+        f"{chosen.key[:10]} ({chosen.window}), annualised % (x{ppy})",
+        ["as of", "run", "filtered (real-time)", "std", "smoothed (revised)", "std", "revision", "change"],
+        rows, caption="revision = smoothed minus the first release (the first vintage's filtered "
+                      "estimate); change = from the previous vintage's smoothed estimate."))
+    (first_as_of, first), (last_as_of, latest) = found.first_release, found.latest
+    output.line(f"first release ({output.day(first_as_of)}): {pct(first)}% a year; latest "
+                f"({output.day(last_as_of)}): {pct(latest)}% a year; total revision {pct(found.total_revision)} "
+                "points")
+    summary = [(r.asset, r.n_dates, f"{output.day(r.first_date)} to {output.day(r.last_date)}",
+                pct(r.mean_abs_revision), pct(r.mean_revision), pct(r.max_abs_revision))
+               for r in found.summary.itertuples(index=False)]
+    output.show(output.table(
+        f"Revisions per asset, annualised % (x{ppy}): newest smoothed minus first release",
+        ["asset", "dates", "range", "mean |revision|", "mean revision", "largest |revision|"], summary,
+        caption="Over the dates that at least two vintages cover."))
+    output.caution()
+
+
+# ---------------------------------------------------------------------------------------------
+# evaluate
+
+def evaluate(
+    ctx: typer.Context,
+    data: DataOpt,
+    key: KeyOpt = None,
+    window: WindowOpt = None,
+    se: Annotated[SeKind, typer.Option("--se", help="Standard errors of the Clark-West statistic: plain "
+                                       "(OLS; pooled: clustered by date) or newey-west (pooled: "
+                                       "Driscoll-Kraay).")] = SeKind.plain,
+    lags: Annotated[int | None, typer.Option("--lags", min=0, help="Newey-West lags (default "
+                                             "floor(4 (n/100)^(2/9))).", show_default=False)] = None,
+    premium_factors: PremiumFactorsOpt = None,
+    return_shocks: ReturnShocksOpt = None,
+    return_factors: ReturnFactorsOpt = 1,
+    vol_scale: VolScaleOpt = "none",
+    fix: FixOpt = None,
+    max_premium_vol: MaxPremiumVolOpt = None,
+    premium_prior: PremiumPriorOpt = None,
+    initial_premium: InitialPremiumOpt = None,
+    max_iter: MaxIterOpt = None,
+    time_budget: TimeBudgetOpt = None,
+    std_errors: StdErrorsOpt = None,
+    as_json: JsonFlag = False,
+    as_csv: CsvFlag = False,
+) -> None:
+    """Out-of-sample test of a backfill's real-time one-step forecasts against the historical mean.
+
+    Each vintage forecasts the next period's excess return by its filtered premium at its cut-off;
+    the benchmark is the expanding mean of the asset's returns up to the cut-off.  Per asset and
+    pooled: out-of-sample R² (Campbell & Thompson 2008; above 0 = better than the historical mean)
+    and the Clark & West (2007) MSPE-adjusted t-statistic with its one-sided p-value.
+    """
+    from panel.evaluation import evaluate_backfill
+
+    st = state(ctx)
+    settings = (premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol, premium_prior,
+                initial_premium, max_iter, time_budget, std_errors)
+    given = _settings_given(window, *settings)
+    if lags is not None and se is SeKind.plain:
+        raise typer.BadParameter("--lags goes with --se newey-west", param_hint="--lags")
+    with store_for(st) as store, user_errors():
+        chosen = _chosen_backfill(store, data, key, window, settings, given)
+        result = evaluate_backfill(store, chosen, se=se.value, lags=lags)
+        ppy = _ppy(store, chosen)
+    table = result.table
+    if as_csv:
+        pooled = {"asset": "(pooled)", **result.pooled}
+        import pandas as pd
+
+        output.emit_csv(pd.concat([table, pd.DataFrame([pooled])], ignore_index=True))
+        return
+    if as_json:
+        output.emit_json({"dataset": data, "dataset_hash": chosen.dataset_hash, "backfill_key": chosen.key,
+                          "window": chosen.window, "se": se.value, "lags": lags, "units": output.MACHINE_UNITS,
+                          "periods_per_year": ppy, "assets": table, "pooled": result.pooled,
+                          "pending_forecasts": result.pending, "forecasts": result.forecasts,
+                          "caution": output.CAUTION})
+        return
+    pct = lambda v: output.num(output.premium_pct(v, ppy), 2)  # noqa: E731
+
+    def row(name, r):
+        return (name, r["n"], output.day(r["first_target"]), output.num(100 * r["r2_os"], 2),
+                output.num(r["cw_t"], 2), output.num(r["cw_pvalue"], 3), pct(r["mean_forecast"]),
+                pct(r["mean_benchmark"]), output.num(100 * r["mspe_model"] ** 0.5, 2),
+                output.num(100 * r["mspe_benchmark"] ** 0.5, 2))
+
+    rows = [row(r["asset"], r) for r in table.to_dict(orient="records")]
+    rows.append(row("(pooled)", result.pooled))
+    se_text = "plain" if se is SeKind.plain else f"Newey-West, {'auto' if lags is None else lags} lags"
+    unit = _period(ppy)
+    output.show(output.table(
+        f"Out-of-sample one-step forecasts, backfill {chosen.key[:10]} ({chosen.window}): filtered premium at "
+        f"each cut-off vs the expanding historical mean, targets to {output.day(result.pooled['last_target'])}",
+        ["asset", "n", "first target", "R2_OS %", "CW t", "p", "forecast", "hist. mean",
+         f"RMSE %/{unit}", f"hist. RMSE %/{unit}"],
+        rows, caption=f"R2_OS = 1 - SSE(model)/SSE(historical mean) (Campbell-Thompson 2008). CW = Clark-West "
+                      f"(2007) MSPE-adjusted t, p one-sided (H1: the model forecasts better); SE {se_text}, "
+                      f"pooled over assets by date. Forecast and historical mean: averages, annualised % "
+                      f"(x{ppy}); RMSE per {unit}, not annualised."))
+    if result.pending:
+        output.line(f"{result.pending} forecast(s) have no realized return yet (or it is missing): left out")
+    output.caution()
+
+
+def _period(ppy: int) -> str:
+    return {12: "month", 4: "quarter", 52: "week", 1: "year", 252: "day"}.get(ppy, "period")
+
+
+def register(app: typer.Typer) -> None:
+    app.command("backfill")(backfill)
+    app.command("revisions")(revisions)
+    app.command("evaluate")(evaluate)
