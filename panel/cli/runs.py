@@ -1,0 +1,493 @@
+"""Commands that read stored runs: ``runs``, ``show``, ``estimates``, ``cross-section``, ``diff``,
+``export``, ``plot``.  All open the store read-only."""
+
+from __future__ import annotations
+
+import json
+from enum import Enum
+from pathlib import Path
+from typing import Annotated
+
+import numpy as np
+import pandas as pd
+import typer
+
+from panel.cli import output
+from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, existing_folder, fail,
+                              parse_date, state, store_for, user_errors)
+
+ENV_FIELDS = ("riskprem_version", "git_commit", "python_version", "numpy_version", "scipy_version",
+              "pandas_version", "duckdb_version", "platform")
+
+
+def _names(store) -> dict[str, str]:
+    from panel.store import list_datasets
+
+    frame = list_datasets(store)
+    return {h: (n or f"({m})") for h, n, m in zip(frame["hash"], frame["current_names"], frame["name"])}
+
+
+def _ppy(inputs) -> int:
+    return int(inputs.spec.periods_per_year or inputs.panel.periods_per_year)
+
+
+def _structure(params) -> str:
+    if params.B is not None:
+        return f"factor ({params.B.shape[1]} return factor{'s' if params.B.shape[1] > 1 else ''})"
+    return "diagonal" if params.psi is not None else "full"
+
+
+def _spec_lines(spec, settings: dict, params) -> list[tuple[str, str]]:
+    k = params.Lambda.shape[1]
+    lines = [("premium factors", f"{k}" + (" (independent local levels)" if k == 0 else "")),
+             ("return shocks", _structure(params))]
+    if spec.vol_scale is not None:
+        vs = spec.vol_scale
+        lines.append(("vol scale", f"ewma, half-life {vs.half_life:g} periods" if vs.kind == "ewma"
+                      else f"{vs.kind} series"))
+    for key, value in spec.fixed:
+        lines.append((f"fixed {key}", f"{100 * value:g}% a year"))
+    if spec.max_premium_vol is not None:
+        lines.append(("max premium vol", f"{100 * spec.max_premium_vol:g}% a year"))
+    if spec.premium_prior is not None:
+        lines.append(("premium prior", f"{100 * spec.premium_prior.vol:g}% a year, weight "
+                      f"{spec.premium_prior.weight:g} periods"))
+    if spec.return_prior is not None:
+        lines.append(("return prior", f"{100 * spec.return_prior.vol:g}% a year, weight "
+                      f"{spec.return_prior.weight:g} periods"))
+    lines.append(("initial premium", "diffuse (exact)" if spec.initial_premium is None else
+                  f"{100 * spec.initial_premium.mean:g}% +- {100 * spec.initial_premium.vol:g}% a year"))
+    lines.append(("window", str(settings.get("window", "expanding"))))
+    lines.append(("start", "warm (recorded parameters)" if settings.get("start") else "default rule"))
+    return lines
+
+
+# ---------------------------------------------------------------------------------------------
+
+def runs(ctx: typer.Context,
+         data: Annotated[str | None, typer.Option("--data", help="Only runs of this dataset (name or hash).",
+                                                  show_default=False)] = None,
+         as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
+    """List the stored runs (vintages), oldest first."""
+    from panel.store import list_runs
+
+    st = state(ctx)
+    with store_for(st) as store, user_errors():
+        frame = list_runs(store, data)
+        names = _names(store)
+    frame.insert(2, "dataset", [names.get(h, "") for h in frame["dataset_hash"]])
+    if as_json:
+        output.emit_json({"store": st.location, "runs": frame})
+        return
+    if as_csv:
+        output.emit_csv(frame.assign(settings=[json.dumps(s, sort_keys=True) for s in frame["settings"]]))
+        return
+    rows = [(r.id, r.kind, r.dataset, output.day(r.as_of), r.label or "", r.status,
+             "-" if pd.isna(r.iterations) else int(r.iterations), output.num(r.loglik), output.num(r.bic),
+             output.num(r.duration_s, 1), str(r.started_utc)[:19])
+            for r in frame.itertuples(index=False)]
+    output.show(output.table(f"Runs in {st.location}" + (f" (dataset {data})" if data else ""),
+                             ["run", "kind", "dataset", "as of", "label", "status", "iter", "loglik", "BIC",
+                              "seconds", "started (UTC)"], rows, right_from=6))
+    if not rows:
+        output.line("no runs yet; estimate one with `riskprem fit --data NAME`")
+
+
+def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
+    """One run: its record, model settings, per-asset parameters (annualised) and latest premia."""
+    from panel.reproduce import run_inputs, stored_params
+    from panel.store import run_tables
+
+    st = state(ctx)
+    with store_for(st) as store, user_errors():
+        inputs = run_inputs(store, run_id)
+        tables = run_tables(store, run_id)
+        params = stored_params(store, inputs, tables)
+        names = _names(store)
+    run, ppy, assets = inputs.run, _ppy(inputs), list(inputs.panel.assets)
+    settings = run["settings"] or {}
+    diag = tables["diagnostics"]
+    if as_json:
+        output.emit_json({
+            "run_id": run["id"], "kind": run["kind"], "label": run["label"],
+            "dataset_hash": run["dataset_hash"], "dataset": names.get(run["dataset_hash"]),
+            "as_of": run["as_of"], "status": run["status"], "converged": run["converged"],
+            "message": run["message"], "loglik": run["loglik"], "aic": run["aic"], "bic": run["bic"],
+            "n_params": run["n_params"], "iterations": run["iterations"], "duration_s": run["duration_s"],
+            "started_utc": run["started_utc"], "finished_utc": run["finished_utc"],
+            "parent_run": run["parent_run"], "settings": settings,
+            "environment": {k: run.get(k) for k in ENV_FIELDS},
+            "periods_per_year": ppy, "units": output.MACHINE_UNITS, "assets": assets,
+            "loadings": params.Lambda, "idio_premium_var": params.q, "premium_cov": params.Sigma,
+            "return_cov": params.H, "return_loadings": params.B, "return_idio_var": params.psi,
+            "parameters": tables["parameters"], "diagnostics": diag, "caution": output.CAUTION})
+        return
+    output.line(f"run {run['id']} ({run['kind']}{', ' + run['label'] if run['label'] else ''})", style="bold")
+    output.facts([
+        ("dataset", f"{names.get(run['dataset_hash'], '')} ({output.short_hash(run['dataset_hash'])})"),
+        ("as of", f"{output.day(run['as_of'])} ({len(inputs.panel.dates)} dates, {len(assets)} assets)"),
+        ("status", f"{run['status']} - {run['message']}"),
+        ("fit", f"log-likelihood {output.num(run['loglik'])}, AIC {output.num(run['aic'])}, "
+                f"BIC {output.num(run['bic'])}, {run['n_params']} parameters, {run['iterations']} iterations"),
+        ("ran", f"{str(run['started_utc'])[:19]} UTC, {output.num(run['duration_s'], 1)} s, riskprem "
+                f"{run.get('riskprem_version')}" + (f", parent run {run['parent_run']}" if run["parent_run"] else "")),
+    ])
+    if st.verbose:
+        output.facts([(k, run.get(k)) for k in ENV_FIELDS])
+    output.facts(_spec_lines(inputs.spec, settings, params))
+    pvalues = {r.asset: r.pvalue for r in diag.itertuples(index=False) if r.statistic == "ljung_box"}
+    k = params.Lambda.shape[1]
+    rows = []
+    for i, asset in enumerate(assets):
+        loadings = [output.num(params.Lambda[i, j] * np.sqrt(ppy) * 100, 2) for j in range(k)]
+        rows.append((asset, *loadings, output.num(output.vol_pct(params.q[i], ppy)),
+                     output.num(output.vol_pct(params.Sigma[i, i], ppy)),
+                     output.num(output.vol_pct(params.H[i, i], ppy), 1), output.num(pvalues.get(asset), 3)))
+    headers = ["asset", *[f"loading f{j + 1}" for j in range(k)], "own premium vol", "premium vol",
+               "return-shock vol", "Ljung-Box p"]
+    output.show(output.table(f"Parameters, annualised % a year (volatility = sqrt(variance x {ppy}); "
+                             f"loadings x sqrt({ppy}))", headers, rows))
+    est = tables["estimates"]
+    last = est[pd.to_datetime(est["date"]) == pd.Timestamp(run["as_of"])].set_index("asset")
+    rows = [(a, output.num(output.premium_pct(last.loc[a, "filtered_mean"], ppy), 1),
+             output.band(last.loc[a, "filtered_mean"], last.loc[a, "filtered_std"], ppy))
+            for a in assets if a in last.index]
+    output.show(output.table(f"Premia at {output.day(run['as_of'])}, annualised % (x{ppy}); filtered = "
+                             "smoothed at the as-of date", ["asset", "premium", "90% band"], rows))
+    output.caution()
+
+
+def estimates(
+    ctx: typer.Context,
+    run_id: RunArg,
+    asset: Annotated[list[str] | None, typer.Option("--asset", help="Only this asset (repeatable).",
+                                                    show_default=False)] = None,
+    kind: Annotated[KindOrBoth, typer.Option("--kind", help="filtered (real-time), smoothed (revised) "
+                                             "or both.")] = KindOrBoth.both,
+    last: Annotated[int, typer.Option("--last", min=0, help="Only the last N dates (0 = all).")] = 12,
+    as_json: JsonFlag = False, as_csv: CsvFlag = False,
+) -> None:
+    """A run's premium estimates per asset and date (annualised %, with 90% bands)."""
+    from panel.reproduce import run_inputs
+    from panel.store import run_tables
+
+    st = state(ctx)
+    with store_for(st) as store, user_errors():
+        inputs = run_inputs(store, run_id)
+        est = run_tables(store, run_id)["estimates"]
+    ppy, assets = _ppy(inputs), list(inputs.panel.assets)
+    unknown = [a for a in asset or () if a not in assets]
+    if unknown:
+        fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(assets)}")
+    chosen = list(asset) if asset else assets
+    est = est.assign(date=pd.to_datetime(est["date"]))
+    est = est[est["asset"].isin(chosen)]
+    if last:
+        keep = sorted(est["date"].unique())[-last:]
+        est = est[est["date"].isin(keep)]
+    order = {a: i for i, a in enumerate(chosen)}
+    est = est.sort_values(["date", "asset"], key=lambda c: c.map(order) if c.name == "asset" else c)
+    kinds = ["filtered", "smoothed"] if kind == KindOrBoth.both else [kind.value]
+    columns = ["date", "asset"] + [f"{k}_{s}" for k in kinds for s in ("mean", "std")]
+    if as_json:
+        output.emit_json({"run_id": run_id, "as_of": inputs.run["as_of"], "periods_per_year": ppy,
+                          "units": output.MACHINE_UNITS, "rows": est[columns], "caution": output.CAUTION})
+        return
+    if as_csv:
+        output.emit_csv(est[columns])
+        return
+    headers = ["date", "asset"]
+    for k in kinds:
+        headers += [f"{k}, % a year", "90% band"]
+    rows = []
+    for r in est.itertuples(index=False):
+        cells = [output.day(r.date), r.asset]
+        for k in kinds:
+            m, s = getattr(r, f"{k}_mean"), getattr(r, f"{k}_std")
+            cells += [output.num(output.premium_pct(m, ppy), 2), output.band(m, s, ppy)]
+        rows.append(cells)
+    basis = " and ".join(f"{k} ({'real-time' if k == 'filtered' else 'revised with all data'})" for k in kinds)
+    output.show(output.table(f"Run {run_id} premia, annualised % (x{ppy}), {basis}; as of "
+                             f"{output.day(inputs.run['as_of'])}", headers, rows, right_from=2))
+    output.caution()
+
+
+def cross_section(
+    ctx: typer.Context,
+    run_id: RunArg,
+    date: Annotated[str | None, typer.Option("--date", help="Date YYYY-MM-DD (default: the run's as-of); "
+                                             "the last panel date on or before it is used.",
+                                             show_default=False)] = None,
+    kind: Annotated[Kind, typer.Option("--kind", help="filtered (real-time) or smoothed (revised).")]
+    = Kind.smoothed,
+    pairs: Annotated[bool, typer.Option("--pairs", help="Also the matrix P(premium of row > premium of "
+                                        "column).")] = False,
+    as_json: JsonFlag = False, as_csv: CsvFlag = False,
+) -> None:
+    """The premia at one date, ranked, with 90% bands and P(premium > 0); --pairs adds the
+    probability that one premium exceeds another (from their joint posterior)."""
+    from panel.reproduce import evaluated_run
+
+    st = state(ctx)
+    when = parse_date(date, "--date")
+    with store_for(st) as store, user_errors():
+        result = evaluated_run(store, run_id)
+    as_of = result.dates[-1]
+    when = as_of if when is None else when
+    if when < result.dates[0] or when > as_of:
+        fail(f"--date {when.date()} is outside run {run_id}'s dates {result.dates[0].date()} to "
+             f"{as_of.date()}; give a date in that range")
+    cs = result.cross_section(when, kind.value)
+    ranked = cs.table()
+    matrix = cs.prob_greater.loc[list(ranked["asset"]), list(ranked["asset"])]
+    ppy = result.periods_per_year
+    if as_json:
+        output.emit_json({"run_id": run_id, "date": cs.date, "kind": kind.value, "as_of": as_of,
+                          "periods_per_year": ppy, "units": output.MACHINE_UNITS, "ranked": ranked,
+                          "assets": list(cs.assets), "mean": cs.mean, "cov": cs.cov,
+                          "prob_greater": {"assets": list(matrix.index), "matrix": matrix.to_numpy()},
+                          "caution": output.CAUTION})
+        return
+    if as_csv:
+        output.emit_csv(matrix.reset_index(names="asset") if pairs else ranked)
+        return
+    rows = [(i + 1, r.asset, output.num(output.premium_pct(r.mean, ppy), 2), output.band(r.mean, r.std, ppy),
+             output.num(output.premium_pct(r.std, ppy), 2), output.pct(r.prob_positive))
+            for i, r in enumerate(ranked.itertuples(index=False))]
+    output.show(output.table(f"Cross-section at {output.day(cs.date)}: {kind.value} premia "
+                             f"({'real-time' if kind == Kind.filtered else 'revised'}), annualised % (x{ppy}); "
+                             f"run {run_id}, as of {output.day(as_of)}",
+                             ["rank", "asset", "premium", "90% band", "std", "P(premium > 0)"], rows,
+                             right_from=2))
+    if pairs:
+        labels = list(matrix.index)
+        rows = [(a, *("" if a == b else output.pct(matrix.loc[a, b]) for b in labels)) for a in labels]
+        output.show(output.table(f"P(premium of row > premium of column) at {output.day(cs.date)}, "
+                                 f"{kind.value}", ["", *labels], rows))
+    output.caution()
+
+
+def _param_summary(frame: pd.DataFrame, side: str, ppy: int) -> dict[str, dict]:
+    """Per asset, from parameter_changes rows: loading(s), own premium vol, return vol (annualised)."""
+    out: dict[str, dict] = {}
+    for r in frame.itertuples(index=False):
+        value = getattr(r, f"value_{side}")
+        if value is None or pd.isna(value):
+            continue
+        entry = out.setdefault(r.row, {})
+        if r.name == "loading":
+            entry[f"loading {r.col}"] = value * np.sqrt(ppy) * 100
+        elif r.name == "idio_premium_var":
+            entry["own premium vol"] = float(output.vol_pct(value, ppy))
+        elif r.name == "premium_cov" and r.row == r.col:
+            entry["premium vol"] = float(output.vol_pct(value, ppy))
+        elif r.name == "return_cov" and r.row == r.col:
+            entry["return-shock vol"] = float(output.vol_pct(value, ppy))
+    return out
+
+
+def diff(ctx: typer.Context,
+         run_a: Annotated[int, typer.Argument(help="First run id.", show_default=False)],
+         run_b: Annotated[int, typer.Argument(help="Second run id.", show_default=False)],
+         as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
+    """Two runs side by side: fit statistics, settings that differ, latest premia and parameters."""
+    from panel.reproduce import run_inputs
+    from panel.store import run_query, run_tables
+
+    st = state(ctx)
+    with store_for(st) as store, user_errors():
+        inputs = [run_inputs(store, run_a), run_inputs(store, run_b)]
+        est = [run_tables(store, r)["estimates"] for r in (run_a, run_b)]
+        changes = run_query(store, "parameter_changes", {"run_a": run_a, "run_b": run_b})
+    runs_ = [i.run for i in inputs]
+    ppy = [_ppy(i) for i in inputs]
+    spec_a = (runs_[0]["settings"] or {}).get("spec", {})
+    spec_b = (runs_[1]["settings"] or {}).get("spec", {})
+    changed = sorted(k for k in set(spec_a) | set(spec_b) if spec_a.get(k) != spec_b.get(k))
+    if runs_[0]["dataset_hash"] != runs_[1]["dataset_hash"]:
+        changed.insert(0, "dataset")
+    latest = []
+    for e, run in zip(est, runs_):
+        e = e.assign(date=pd.to_datetime(e["date"]))
+        latest.append(e[e["date"] == pd.Timestamp(run["as_of"])].set_index("asset"))
+    common = min(pd.Timestamp(runs_[0]["as_of"]), pd.Timestamp(runs_[1]["as_of"]))
+    at_common = []
+    for e in est:
+        e = e.assign(date=pd.to_datetime(e["date"]))
+        at_common.append(e[e["date"] == common].set_index("asset"))
+    assets = list(dict.fromkeys(list(inputs[0].panel.assets) + list(inputs[1].panel.assets)))
+    premia = []
+    for a in assets:
+        row = {"asset": a}
+        for side, frame, cframe in zip("ab", latest, at_common):
+            row[f"filtered_mean_{side}"] = frame.loc[a, "filtered_mean"] if a in frame.index else None
+            row[f"filtered_std_{side}"] = frame.loc[a, "filtered_std"] if a in frame.index else None
+            row[f"smoothed_mean_{side}_at_common"] = cframe.loc[a, "smoothed_mean"] if a in cframe.index else None
+        premia.append(row)
+    premia = pd.DataFrame(premia)
+    if as_json:
+        output.emit_json({"run_a": run_a, "run_b": run_b,
+                          "runs": [{k: r[k] for k in ("id", "kind", "label", "dataset_hash", "as_of", "status",
+                                                      "loglik", "aic", "bic", "n_params", "iterations")}
+                                   for r in runs_],
+                          "settings_changed": changed, "common_date": common, "periods_per_year": ppy,
+                          "units": output.MACHINE_UNITS, "premia": premia, "parameters": changes,
+                          "caution": output.CAUTION})
+        return
+    if as_csv:
+        output.emit_csv(changes)
+        return
+    facts = [("kind", "kind"), ("label", "label"), ("as of", "as_of"), ("dataset", "dataset_hash"),
+             ("status", "status"), ("log-likelihood", "loglik"), ("AIC", "aic"), ("BIC", "bic"),
+             ("parameters", "n_params"), ("iterations", "iterations")]
+    rows = []
+    for title, key in facts:
+        a, b = runs_[0][key], runs_[1][key]
+        if key == "as_of":
+            a, b = output.day(a), output.day(b)
+        elif key == "dataset_hash":
+            a, b = output.short_hash(a), output.short_hash(b)
+        elif key in ("loglik", "aic", "bic"):
+            a, b = output.num(a), output.num(b)
+        rows.append((title, a if a is not None else "-", b if b is not None else "-"))
+    output.show(output.table(f"Run {run_a} vs run {run_b}", ["", f"run {run_a}", f"run {run_b}"], rows))
+    output.line("settings that differ: " + (", ".join(changed) if changed else "none"))
+    if ppy[0] != ppy[1]:
+        output.line(f"note: the runs have different periods a year ({ppy[0]} and {ppy[1]})")
+    rows = []
+    for r in premia.itertuples(index=False):
+        fa, fb = r.filtered_mean_a, r.filtered_mean_b
+        sa, sb = r.smoothed_mean_a_at_common, r.smoothed_mean_b_at_common
+        pa = None if fa is None else float(output.premium_pct(fa, ppy[0]))
+        pb = None if fb is None else float(output.premium_pct(fb, ppy[1]))
+        ca = None if sa is None else float(output.premium_pct(sa, ppy[0]))
+        cb = None if sb is None else float(output.premium_pct(sb, ppy[1]))
+        rows.append((r.asset, output.num(pa), output.num(pb),
+                     "-" if pa is None or pb is None else output.num(pb - pa),
+                     output.num(ca), output.num(cb), "-" if ca is None or cb is None else output.num(cb - ca)))
+    d = output.day(common)
+    output.show(output.table(
+        "Premia, annualised %: filtered at each run's as-of, smoothed at the common date " + d,
+        ["asset", f"run {run_a} filtered", f"run {run_b} filtered", "change (pp)",
+         f"run {run_a} smoothed {d}", f"run {run_b} smoothed {d}", "change (pp)"], rows))
+    summary = [_param_summary(changes, "a", ppy[0]), _param_summary(changes, "b", ppy[1])]
+    found = {k for s in summary for entry in s.values() for k in entry}
+    keys = sorted(k for k in found if k.startswith("loading"))
+    keys += [k for k in ("own premium vol", "premium vol", "return-shock vol") if k in found]
+    rows = []
+    for a in assets:
+        cells = [a]
+        for key in keys:
+            cells += [output.num(summary[0].get(a, {}).get(key)), output.num(summary[1].get(a, {}).get(key))]
+        rows.append(cells)
+    headers = ["asset"] + [f"{key} {side}" for key in keys for side in ("A", "B")]
+    output.show(output.table(f"Parameters, annualised % (A = run {run_a}, B = run {run_b}; all raw values: "
+                             "--json or --csv)", headers, rows))
+    output.caution()
+
+
+class Table(str, Enum):
+    estimates = "estimates"
+    factors = "factors"
+    parameters = "parameters"
+    trace = "trace"
+    diagnostics = "diagnostics"
+
+
+def export(ctx: typer.Context, run_id: RunArg,
+           path: Annotated[Path, typer.Argument(help="Target file: .parquet or .csv.", show_default=False)],
+           table: Annotated[Table, typer.Option("--table", help="Which result table.")] = Table.estimates,
+           as_json: JsonFlag = False) -> None:
+    """Write one result table of a run to a Parquet or CSV file (per-period decimal units, the
+    store's column names)."""
+    from panel.store import export_run
+
+    st = state(ctx)
+    with store_for(st) as store, user_errors():
+        written = export_run(store, run_id, path, table.value)
+    if as_json:
+        output.emit_json({"run_id": run_id, "table": table.value, "path": str(written),
+                          "units": output.MACHINE_UNITS, "caution": output.CAUTION})
+        return
+    output.line(f"wrote the {table.value} of run {run_id} to {written} (per-period decimal units)")
+    output.caution()
+
+
+class Chart(str, Enum):
+    paths = "paths"
+    cross_section = "cross-section"
+    vintages = "vintages"
+
+
+def plot(
+    ctx: typer.Context,
+    run_id: RunArg,
+    asset: Annotated[list[str] | None, typer.Option("--asset", help="Asset(s) to draw (repeatable); "
+                     "default: the first four (paths) or the first (vintages).", show_default=False)] = None,
+    date: Annotated[str | None, typer.Option("--date", help="Date for the cross-section or vintages chart "
+                                             "(default: the run's as-of).", show_default=False)] = None,
+    chart: Annotated[Chart, typer.Option("--chart", help="paths: premium paths, filtered vs smoothed; "
+                     "cross-section: the premia at --date; vintages: how the estimate at --date moved "
+                     "across stored vintages.")] = Chart.paths,
+    kind: Annotated[Kind, typer.Option("--kind", help="Basis of the cross-section chart.")] = Kind.smoothed,
+    out: Annotated[Path | None, typer.Option("--out", help="PNG file to write (default: "
+                   "riskprem-run<ID>-<chart>.png here).", show_default=False)] = None,
+    as_json: JsonFlag = False,
+) -> None:
+    """Draw a PNG chart of a run (annualised %, 90% bands, as-of date in the title)."""
+    from panel import plots
+    from panel.reproduce import evaluated_run, run_inputs, vintage_history
+    from panel.store import run_tables
+
+    st = state(ctx)
+    when = parse_date(date, "--date")
+    target = out or Path(f"riskprem-run{run_id}-{chart.value}.png")
+    if target.suffix.lower() != ".png":
+        fail(f"--out {target}: charts are written as PNG; give a file name ending in .png")
+    existing_folder(target, "--out")
+    with store_for(st) as store, user_errors():
+        inputs = run_inputs(store, run_id)
+        assets = list(inputs.panel.assets)
+        unknown = [a for a in asset or () if a not in assets]
+        if unknown:
+            fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(assets)}")
+        as_of = pd.Timestamp(inputs.run["as_of"])
+        when = as_of if when is None else when
+        if chart != Chart.paths and (when < inputs.panel.dates[0] or when > as_of):
+            fail(f"--date {when.date()} is outside run {run_id}'s dates {inputs.panel.dates[0].date()} to "
+                 f"{as_of.date()}; give a date in that range")
+        ppy = _ppy(inputs)
+        if chart == Chart.paths:
+            chosen = list(asset) if asset else assets[:4]
+            fig = plots.premium_paths(run_tables(store, run_id)["estimates"], chosen, ppy, as_of,
+                                      title=f"Run {run_id}: premium paths")
+        elif chart == Chart.cross_section:
+            result = evaluated_run(store, run_id)
+            cs = result.cross_section(when, kind.value)
+            fig = plots.cross_section_chart(cs.table(), ppy, cs.date, kind.value, as_of,
+                                            title=f"Run {run_id}: cross-section")
+        else:
+            chosen = list(asset) if asset else assets[:1]
+            date_used = inputs.panel.dates[inputs.panel.dates.searchsorted(when, side="right") - 1]
+            history = vintage_history(store, run_id, chosen[0], date_used)
+            if len(history) == 0:
+                fail(f"no stored vintage of run {run_id}'s model has {chosen[0]!r} at {date_used.date()}; "
+                     "backfill vintages first or pick another date")
+            fig = plots.vintage_chart(history, chosen[0], date_used, ppy, title="Revisions across vintages")
+    written = plots.save(fig, target)
+    if as_json:
+        output.emit_json({"run_id": run_id, "chart": chart.value, "path": str(written),
+                          "caution": output.CAUTION})
+        return
+    output.line(f"wrote {written} ({chart.value} chart of run {run_id}; annualised %, 90% bands)")
+    output.caution()
+
+
+def register(app: typer.Typer) -> None:
+    app.command("runs")(runs)
+    app.command("show")(show)
+    app.command("estimates")(estimates)
+    app.command("cross-section")(cross_section)
+    app.command("diff")(diff)
+    app.command("export")(export)
+    app.command("plot")(plot)
