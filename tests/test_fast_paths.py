@@ -159,3 +159,18 @@ def test_stretch_start_and_auto_choice():
     lam, Sigma, H = _model(rng, "factor")
     assert paths.estep(Y, Sigma, H, None, None, "balanced").loglik == pytest.approx(
         dense_smoother(Y, Sigma, H).loglik, rel=1e-8)
+
+
+def test_singular_premium_covariance_with_dormant_assets_falls_back_exactly():
+    # A premium volatility fixed at zero (k = 0) makes Sigma_OO singular; with dormant assets the
+    # stretch path hands over to the dense path rather than failing.
+    rng = np.random.default_rng(9)
+    Y = _panel(rng, "exits")
+    _, Sigma, H = _model(rng, "factor", k=1)
+    Sigma = np.diag(np.diag(Sigma))
+    Sigma[0, 0] = 0.0
+    ref = dense_smoother(Y, Sigma, H)
+    est = paths.estep(Y, Sigma, H, None, None, "stretch")
+    assert est.loglik == pytest.approx(ref.loglik, rel=1e-8)
+    _close(impute_sum(est.w_groups, Sigma + 1e-12 * np.eye(N))[0],
+           impute_sum(ref.estep.w_groups, Sigma + 1e-12 * np.eye(N))[0])

@@ -289,7 +289,11 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
                                     want_estep=want_estep)
     cov_at = set(cov_at)
     flt, prior = _prior(Y, Sigma, H, s2, init, Lambda, a)
-    tail = _Tail(Y, Sigma, H, s2, a, prior, Lambda, want_var=want_report)
+    try:
+        tail = _Tail(Y, Sigma, H, s2, a, prior, Lambda, want_var=want_report)
+    except linalg.LinAlgError:      # singular Sigma_OO with dormant assets or factors: dense copes
+        return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
+                                    want_estep=want_estep)
     k = tail.k
     loglik = tail.loglik
     w_groups, e_groups = tail.groups() if want_estep else ([], [])
