@@ -27,6 +27,12 @@ def _names(store) -> dict[str, str]:
     return {h: (n or f"({m})") for h, n, m in zip(frame["hash"], frame["current_names"], frame["name"])}
 
 
+def _first_name(names: str) -> str:
+    """``a, b, c`` -> ``a (+2)``: a run table shows one of a dataset's names."""
+    parts = [p for p in str(names).split(", ") if p]
+    return "" if not parts else parts[0] + (f" (+{len(parts) - 1})" if len(parts) > 1 else "")
+
+
 def _ppy(inputs) -> int:
     return int(inputs.spec.periods_per_year or inputs.panel.periods_per_year)
 
@@ -76,19 +82,20 @@ def runs(ctx: typer.Context,
         frame = list_runs(store, data)
         names = _names(store)
     frame.insert(2, "dataset", [names.get(h, "") for h in frame["dataset_hash"]])
+    shown = [_first_name(n) for n in frame["dataset"]]
     if as_json:
         output.emit_json({"store": st.location, "runs": frame})
         return
     if as_csv:
         output.emit_csv(frame.assign(settings=[json.dumps(s, sort_keys=True) for s in frame["settings"]]))
         return
-    rows = [(r.id, r.kind, r.dataset, output.day(r.as_of), r.label or "", r.status,
+    rows = [(r.id, r.kind, name, output.day(r.as_of), r.label or "", r.status,
              "-" if pd.isna(r.iterations) else int(r.iterations), output.num(r.loglik), output.num(r.bic),
-             output.num(r.duration_s, 1), str(r.started_utc)[:19])
-            for r in frame.itertuples(index=False)]
+             output.num(r.duration_s, 1), str(r.started_utc)[:16])
+            for r, name in zip(frame.itertuples(index=False), shown)]
     output.show(output.table(f"Runs in {st.location}" + (f" (dataset {data})" if data else ""),
                              ["run", "kind", "dataset", "as of", "label", "status", "iter", "loglik", "BIC",
-                              "seconds", "started (UTC)"], rows, right_from=6))
+                              "seconds", "started UTC"], rows, right_from=6))
     if not rows:
         output.line("no runs yet; estimate one with `riskprem fit --data NAME`")
 
