@@ -189,8 +189,10 @@ def fit(
         info(st, f"fitting {len(vintage.assets)} assets x {len(vintage.dates)} dates "
                  f"(as of {vintage.dates[-1].date()})")
         started = pd.Timestamp.now(tz="UTC").tz_localize(None).to_pydatetime()
-        with progress(st, f"estimating ({len(vintage.assets)} assets x {len(vintage.dates)} dates)"):
-            result = estimate(vintage, spec)
+        label_text = f"estimating ({len(vintage.assets)} assets x {len(vintage.dates)} dates)"
+        with progress(st, label_text, total=spec.max_iter) as bar:
+            result = estimate(vintage, spec, progress=lambda n, objective: bar.update(
+                n, description=f"{label_text}, objective {objective:,.2f}"))
     from panel.store import write_dataset, write_run
 
     with store_for(st, write=True) as store, user_errors():

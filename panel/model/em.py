@@ -42,13 +42,14 @@ class EMOutcome:
 
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
-           bounds=None, extrapolate: bool = True) -> EMOutcome:
+           bounds=None, extrapolate: bool = True, progress=None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
     ``score(e, p) -> (n_theta,)`` enables the quasi-Newton finish, within ``bounds`` (a list of
     (low, high) per packed parameter), which also clip SQUAREM's extrapolation;
     ``extrapolate=False`` turns SQUAREM off.  ``max_iter`` bounds the number of E-steps.
+    ``progress(n_estep, objective)`` is called after every accepted step.
     """
     accelerate = accelerate and extrapolate
     lo = hi = None
@@ -59,7 +60,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     p, e = p0, estep(p0)
     obj = objective(e, p)
     n = 1
-    trace = [(0, obj, e.loglik, time.perf_counter() - start, "start")]
+    trace = _Trace(progress)
+    trace.append((0, obj, e.loglik, time.perf_counter() - start, "start"))
 
     def elapsed():
         return time.perf_counter() - start
@@ -124,6 +126,19 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
                      trace=tuple(trace))
+
+
+class _Trace(list):
+    """The accepted steps; reports each one to an optional progress callback."""
+
+    def __init__(self, progress):
+        super().__init__()
+        self.progress = progress
+
+    def append(self, row) -> None:
+        super().append(row)
+        if self.progress is not None:
+            self.progress(row[0], row[1])
 
 
 class _OutOfTime(Exception):

@@ -71,7 +71,8 @@ class _Problem:
                                                 self.sigma_prior, self.h_prior)
 
 
-def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> PanelFit:
+def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
+        progress=None) -> PanelFit:
     """Fit the premium panel by EM.
 
     Parameters
@@ -79,6 +80,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> Pan
     data : Panel or DataFrame (dates x assets, decimal excess returns per period, NaN missing).
     spec : ModelSpec (default settings when None).
     start : Params to start from (a warm start); None uses the moment-based rule.
+    progress : optional ``callable(n_estep, objective)``, called after every accepted EM step.
     """
     t0 = time.perf_counter()
     panel = _as_panel(data)
@@ -100,7 +102,8 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None) -> Pan
             lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
             prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
             max_iter=spec.max_iter, time_budget=spec.time_budget,
-            accelerate=spec.acceleration != "none", **_quasi_newton_setup(prob, floor))
+            accelerate=spec.acceleration != "none", progress=progress,
+            **_quasi_newton_setup(prob, floor))
         p, status, message, n_iter = outcome.params, outcome.status, outcome.message, outcome.n_estep
         objective, trace, loglik = outcome.objective, outcome.trace, outcome.estep.loglik
         status, message = _boundary_status(p, rs, floor, panel.assets, status, message)
