@@ -48,7 +48,7 @@ from panel.model.fit import fit
 from panel.model.params import Params
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec, SpecError
-from panel.backfill_pools import BackfillError, default_workers, open_pool
+from panel.backfill_pools import BackfillError, default_workers, open_pool  # noqa: F401 (re-exported)
 from panel.store import (Store, backfill_key, find_run, from_fit, get_run, load_panel, resolve_dataset,
                          run_environment, run_query, run_tables, write_run)
 
