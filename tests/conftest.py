@@ -6,11 +6,19 @@ store; each test gets its own copy of that store file.
 
 from __future__ import annotations
 
-import shutil
-from pathlib import Path
+import os
 
-import pytest
-from typer.testing import CliRunner
+# riskprem's matrices are small: multi-threaded BLAS only adds overhead (measured up to 30x slower
+# on a 2-core machine), so tests run single-threaded unless the environment says otherwise.  This
+# must happen before numpy is first imported.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+import shutil  # noqa: E402
+from pathlib import Path  # noqa: E402
+
+import pytest  # noqa: E402
+from typer.testing import CliRunner  # noqa: E402
 
 from tests.cli_helpers import CLI_FIT_OPTIONS, CliStore, cli_small_frame, cli_write_csv
 

@@ -26,7 +26,7 @@ from panel.model.params import Packer, Params
 #: Allowed fall of the objective per step, relative — rounding noise, not a decrease.
 NOISE = 1e-11
 #: EM relative progress per step below which the quasi-Newton finish takes over.
-HANDOVER = 1e-6
+HANDOVER = 1e-5
 
 
 @dataclass(frozen=True)
@@ -154,35 +154,58 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
     count = {"n": n}
     t_start = elapsed()
     theta0 = packer.pack(p)
-    # Raw loadings are orders of magnitude smaller than log variances: optimise theta / d with d
-    # the magnitude of each raw entry, so that L-BFGS sees a well-scaled problem.
-    raw = ~packer.log_variance_mask()
-    mag = np.abs(theta0[raw])
+    # The optimiser works on x: raw entries (loadings) scaled by their magnitude, and log entries
+    # turned back into standard deviations s = exp(theta / a) scaled by their start value.  In logs
+    # a variance heading for zero is an endless flat road; in s it reaches its bound in a few steps.
+    a = packer.log_power()
+    logs = a > 0
     d = np.ones(theta0.size)
-    if raw.any():
-        d[raw] = np.maximum(mag, np.median(mag[mag > 0]) if (mag > 0).any() else 1.0)
+    mag = np.abs(theta0[~logs])
+    if (~logs).any():
+        d[~logs] = np.maximum(mag, np.median(mag[mag > 0]) if (mag > 0).any() else 1.0)
+    d[logs] = np.exp(theta0[logs] / a[logs])
+
+    def to_theta(x):
+        theta = x * d
+        theta[logs] = a[logs] * np.log(theta[logs])
+        return theta
+
+    def dtheta_dx(x):
+        out = d.copy()
+        out[logs] = a[logs] / x[logs]
+        return out
+
     scale = max(1.0, abs(obj))
 
-    def f(u):
+    def f(x):
         if count["n"] >= max_iter:
             raise _OutOfTime("max_iter")
         if time_left is not None and elapsed() - t_start > time_left:
             raise _OutOfTime("time_budget")
-        pp = packer.unpack(u * d, p)
+        pp = packer.unpack(to_theta(x), p)
         ee = estep(pp)
         oo = objective(ee, pp)
         count["n"] += 1
         if oo > best["obj"]:
             best.update(p=pp, e=ee, obj=oo)
             trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
-        return -oo / scale, -score(ee, pp) * d / scale
+        return -oo / scale, -score(ee, pp) * dtheta_dx(x) / scale
 
-    ubounds = None
-    if bounds is not None:
-        ubounds = [(None if lo is None else lo / dj, None if hi is None else hi / dj)
-                   for (lo, hi), dj in zip(bounds, d)]
+    xbounds = []
+    for j, (lo, hi) in enumerate(bounds if bounds is not None else [(None, None)] * theta0.size):
+        if logs[j]:
+            lo = np.exp(lo / a[j]) / d[j] if lo is not None else 1e-12
+            hi = np.exp(hi / a[j]) / d[j] if hi is not None else None
+        else:
+            lo = None if lo is None else lo / d[j]
+            hi = None if hi is None else hi / d[j]
+        xbounds.append((lo, hi))
+    x0 = theta0 / d
+    x0[logs] = 1.0
     try:
-        res = optimize.minimize(f, theta0 / d, jac=True, method="L-BFGS-B", bounds=ubounds,
+        res = optimize.minimize(f, np.clip(x0, [b[0] if b[0] is not None else -np.inf for b in xbounds],
+                                           [b[1] if b[1] is not None else np.inf for b in xbounds]),
+                                jac=True, method="L-BFGS-B", bounds=xbounds,
                                 options={"maxfun": max(1, max_iter - n), "ftol": 1e-15, "gtol": 1e-10,
                                          "maxcor": 20})
         if res.success:

@@ -88,7 +88,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     prob = _Problem(panel, spec)
     rs = prob.rs
     p0 = starting_values(prob.Y, rs) if start is None else _check_start(start, prob)
-    floor = ms.VAR_FLOOR * float(np.mean(np.diag(p0.H)))
+    floor = ms.VAR_FLOOR * np.diag(p0.H)   # per asset: a variance here is a boundary solution
     n_free = count_free(rs, prob.Y.shape[1])
     if n_free == 0:
         e = prob.estep(p0)
@@ -119,7 +119,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
                    time.perf_counter() - t0)
 
 
-def _quasi_newton_setup(prob: _Problem, floor: float) -> dict:
+def _quasi_newton_setup(prob: _Problem, floor: np.ndarray) -> dict:
     """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
     finish) and the score.  With factors and a premium-volatility cap the bound is not a box:
     then plain EM only, whose M-step enforces it."""
@@ -127,13 +127,16 @@ def _quasi_newton_setup(prob: _Problem, floor: float) -> dict:
     if rs.max_sigma_diag is not None and rs.k > 0:
         return {"extrapolate": False}
     logvar = prob.packer.log_variance_mask()
+    n_lam = int(prob.packer.lam_free.sum())
     n_q = int(prob.packer.free_q.sum())
-    q_slice = slice(int(prob.packer.lam_free.sum()), int(prob.packer.lam_free.sum()) + n_q)
-    low = np.where(logvar, np.log(floor), -np.inf)
+    q_slice = slice(n_lam, n_lam + n_q)
+    low = np.full(logvar.size, -np.inf)
+    low[q_slice] = np.log(floor[prob.packer.free_q])
     if rs.structure == "full":  # log Cholesky diagonal: half the log variance
-        chol = np.zeros(logvar.size, bool)
-        chol[q_slice.stop:] = logvar[q_slice.stop:]
-        low[chol] = 0.5 * np.log(floor)
+        low[q_slice.stop:][logvar[q_slice.stop:]] = 0.5 * np.log(floor.min())
+    else:
+        n_psi = int(prob.packer.free_psi.sum())
+        low[logvar.size - n_psi:] = np.log(floor[prob.packer.free_psi])
     high = np.full(logvar.size, np.inf)
     if rs.max_sigma_diag is not None:
         high[q_slice] = np.log(rs.max_sigma_diag)

@@ -26,7 +26,9 @@ from panel.model.params import Params, canonical_loadings
 from panel.model.spec import ResolvedSpec
 
 FA_INNER_STEPS = 10
-VAR_FLOOR = 1e-12       # relative to the mean return-shock variance: keeps covariances invertible
+VAR_FLOOR = 1e-9        # lower bound of every variance, relative to the asset's starting return-
+                        # shock variance: keeps covariances invertible and lets the optimiser stop
+                        # at a boundary instead of crawling towards zero
 BOUNDARY_RATIO = 1e-8   # premium innovation variance below this fraction of the return-shock
                         # variance: the premium is constant in practice (a boundary solution)
 
@@ -100,7 +102,8 @@ def _target(total, n, prior: PriorTerms):
 
 def mstep(est, p: Params, rs: ResolvedSpec, floor: float, sigma_prior: PriorTerms,
           h_prior: PriorTerms) -> Params:
-    """One generalised M-step from the E-step ``est`` (:class:`panel.kalman.types.EStep`)."""
+    """One generalised M-step from the E-step ``est`` (:class:`panel.kalman.types.EStep`);
+    ``floor`` (N,) bounds every asset's variances from below."""
     N = p.n_assets
     free_q = np.ones(N, bool) if rs.fixed_q is None else np.isnan(rs.fixed_q)
     q_fixed = np.zeros(N) if rs.fixed_q is None else np.nan_to_num(np.asarray(rs.fixed_q))

@@ -101,17 +101,22 @@ class Packer:
         self.lam_free = np.tril(np.ones((n_assets, rs.k), bool))
         self.b_free = np.tril(np.ones((n_assets, rs.r), bool))
 
-    def log_variance_mask(self) -> np.ndarray:
-        """Which packed entries are log variances (for full H: log Cholesky diagonals)."""
-        parts = [np.zeros(int(self.lam_free.sum()), bool), np.ones(int(self.free_q.sum()), bool)]
+    def log_power(self) -> np.ndarray:
+        """Per packed entry: 0 for a raw value, a > 0 where the entry is ``a log s`` of a positive
+        standard-deviation-like ``s`` (2 for a log variance, 1 for a log Cholesky diagonal)."""
+        parts = [np.zeros(int(self.lam_free.sum())), np.full(int(self.free_q.sum()), 2.0)]
         if self.rs.structure == "full":
             rows, cols = self.tril
-            parts.append(rows == cols)
+            parts.append(np.where(rows == cols, 1.0, 0.0))
         else:
             if self.rs.structure == "factor":
-                parts.append(np.zeros(int(self.b_free.sum()), bool))
-            parts.append(np.ones(int(self.free_psi.sum()), bool))
+                parts.append(np.zeros(int(self.b_free.sum())))
+            parts.append(np.full(int(self.free_psi.sum()), 2.0))
         return np.concatenate(parts)
+
+    def log_variance_mask(self) -> np.ndarray:
+        """Which packed entries are log variances (for full H: log Cholesky diagonals)."""
+        return self.log_power() > 0
 
     def pack(self, p: Params) -> np.ndarray:
         parts = [p.Lambda[self.lam_free], np.log(p.q[self.free_q])]
