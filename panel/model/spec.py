@@ -106,8 +106,10 @@ class ModelSpec:
         slows down; "squarem": EM with SQUAREM only; "none": plain EM.
     std_errors : {"auto", "always", "never"}
         "auto" computes them when the free parameters number at most 150.
-    method : str
-        E-step path: "auto" or "dense" (the reference path).
+    method : {"auto", "dense", "stretch", "balanced"}
+        E-step path (:mod:`panel.kalman.paths`): "dense" is the reference; "stretch" decouples the
+        panel's final balanced stretch exactly; "balanced" is "stretch" for fully balanced panels
+        only; "auto" picks the cheaper by estimated cost.  All agree to rounding.
     """
 
     premium_factors: int | None = None
