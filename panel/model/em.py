@@ -121,7 +121,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
         if score is not None and rel < HANDOVER:
             remaining = None if time_budget is None else time_budget - elapsed()
             p, e, obj, n, status, message = _quasi_newton(
-                p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining, tol,
+                p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
                 trace, elapsed)
             break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
@@ -145,9 +145,13 @@ class _OutOfTime(Exception):
     pass
 
 
-def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left, tol,
+def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
                   trace, elapsed):
-    """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated."""
+    """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated.
+
+    Converged means L-BFGS-B's own test passed: the projected gradient of the objective (scaled
+    by its magnitude) below 1e-10, with variances at their floor counting as on a bound.
+    """
     from scipy import optimize
 
     best = {"p": p, "e": e, "obj": obj}

@@ -96,7 +96,9 @@ class ModelSpec:
     tol : float
         Stop when the relative change of the objective per accepted step is below ``tol`` ...
     param_tol : float
-        ... and the largest parameter change (transformed scale) is below ``param_tol``.
+        ... and the largest parameter change (transformed scale) is below ``param_tol``.  (With the
+        quasi-Newton finish, EM hands over once its relative progress per step falls below 1e-5;
+        the fit has then converged when L-BFGS-B's projected-gradient test passes.)
     max_iter : int
         Maximum EM iterations (E-steps).
     time_budget : float or None
