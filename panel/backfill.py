@@ -116,8 +116,8 @@ def cutoff_dates(panel: Panel, start=None, end=None, every: int = 1) -> pd.Datet
     ``every``-th counted from the first one in range."""
     if not isinstance(every, (int, np.integer)) or isinstance(every, bool) or every < 1:
         raise BackfillError(f"every must be a whole number >= 1, got {every!r}")
-    lo = panel.dates[0] if start is None else _date(start, "start")
-    hi = panel.dates[-1] if end is None else _date(end, "end")
+    lo = panel.dates[0] if start is None else parse_date(start, "start")
+    hi = panel.dates[-1] if end is None else parse_date(end, "end")
     if lo > hi and end is None:
         raise BackfillError(f"start {lo.date()} is after the dataset's last date {hi.date()}; give an "
                             "earlier start")
@@ -130,7 +130,8 @@ def cutoff_dates(panel: Panel, start=None, end=None, every: int = 1) -> pd.Datet
     return dates
 
 
-def _date(value, what: str) -> pd.Timestamp:
+def parse_date(value, what: str) -> pd.Timestamp:
+    """``value`` as a Timestamp, or :class:`BackfillError` naming ``what`` and the fix."""
     try:
         stamp = pd.Timestamp(value)
     except (TypeError, ValueError):

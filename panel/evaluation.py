@@ -36,7 +36,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from panel.backfill import BackfillError, BackfillInfo
+from panel.backfill import BackfillError, BackfillInfo, parse_date
 from panel.store import Store, load_panel, run_query
 
 SE_KINDS = ("plain", "newey-west")
@@ -235,12 +235,7 @@ class Revisions:
 
 def revisions(store: Store, backfill: BackfillInfo, asset: str, date) -> Revisions:
     """The revision path of ``asset`` at ``date`` and the per-asset revision summary of a backfill."""
-    try:
-        day = pd.Timestamp(date)
-    except (TypeError, ValueError):
-        day = pd.NaT
-    if pd.isna(day):
-        raise BackfillError(f"date {date!r} is not a date; give YYYY-MM-DD")
+    day = parse_date(date, "date")
     params = {"dataset": backfill.dataset_hash, "key": backfill.key}
     path = run_query(store, "revision_path", {**params, "asset": str(asset), "date": str(day.date())})
     if path.empty:
