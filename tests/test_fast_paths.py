@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from panel.kalman import paths
-from panel.kalman.chain import Basis, filter_chains, smooth_chains
+from panel.kalman.chain import Basis, filter_chains, smooth_chains, spectral
 from panel.kalman.dense import dense_smoother
 from panel.kalman.stretch import final_stretch_start, stretch_smoother
 from panel.model.mstep import impute_sum
@@ -115,12 +115,16 @@ def test_chain_kernel_matches_scalar_dense_filter():
     for s2 in (np.full(L, 1.7), rng.uniform(0.5, 2.0, L)):
         z = rng.normal(size=(L, 3))
         d = np.array([0.03, 1e-12, 0.5])
-        cm = smooth_chains(Basis(s2), z, d, want_g=True, want_var=True)
+        basis = Basis(s2)
+        cm = smooth_chains(basis, spectral(basis, z), d, want_g=True, want_var=True)
+        mean = cm.path(basis, cm.coef)
         fc = filter_chains(z, s2, d)
         for i in range(3):
             ref = dense_smoother(z[:, [i]], d[[i]][:, None], np.eye(1), s2)
             assert cm.loglik[i] == pytest.approx(ref.loglik, rel=1e-10)
-            _close(cm.mean[:, i], ref.smoothed_mean[:, 0], 1e-10)
+            _close(mean[:, i], ref.smoothed_mean[:, 0], 1e-10)
+            assert cm.first_mean[i] == pytest.approx(ref.smoothed_mean[0, 0], rel=1e-10)
+            assert cm.first_var[i] == pytest.approx(ref.smoothed_var[0, 0], rel=1e-10)
             _close(cm.var[:, i], ref.smoothed_var[:, 0], 1e-10)
             _close(fc.c[:, i] + fc.g[:, i] * fc.h[:, i] / fc.J[:, i], ref.filtered_mean[:, 0], 1e-10)
             _close(fc.p[:, i] + fc.g[:, i] ** 2 / fc.J[:, i], ref.filtered_var[:, 0], 1e-10)
@@ -174,3 +178,33 @@ def test_singular_premium_covariance_with_dormant_assets_falls_back_exactly():
     assert est.loglik == pytest.approx(ref.loglik, rel=1e-8)
     _close(impute_sum(est.w_groups, Sigma + 1e-12 * np.eye(N))[0],
            impute_sum(ref.estep.w_groups, Sigma + 1e-12 * np.eye(N))[0])
+
+
+@pytest.mark.parametrize("small", [1e-3, 1e-9])
+@pytest.mark.parametrize("r", [0, 1, 2])
+@pytest.mark.parametrize("pattern", ["balanced", "exits"])
+def test_structured_return_covariance_reduction_equals_dense(pattern, r, small):
+    # H = B B' + diag(psi) handed over as its parts: the O(n^2 r) reduction of the pencil must
+    # give the dense path's E-step; one idiosyncratic variance small (1e-3: still reduced) or at
+    # a floor-like 1e-9 (handed to the Cholesky route).
+    from panel.kalman.stretch import simultaneous_diagonalisation
+
+    rng = np.random.default_rng(20 + r)
+    Y = _panel(rng, pattern)
+    lam, Sigma, _ = _model(rng, "factor")
+    B = rng.normal(size=(N, r)) * 0.8
+    psi = rng.uniform(0.5, 1.5, N)
+    psi[2] = small
+    H = B @ B.T + np.diag(psi)
+    d, V, W, logdet_v = simultaneous_diagonalisation(Sigma, H, (B, psi))
+    _close(V.T @ H @ V, np.eye(N), 1e-10)
+    _close(V.T @ Sigma @ V, np.diag(d), 1e-12 * d.max())
+    _close(W, H @ V, 1e-10)
+    assert logdet_v == pytest.approx(-0.5 * np.linalg.slogdet(H)[1], rel=1e-12)
+    ref = dense_smoother(Y, Sigma, H)
+    est = paths.Plan(Y, method="stretch").estep(Sigma, H, h_parts=(B, psi))
+    assert est.loglik == pytest.approx(ref.loglik, rel=1e-8)
+    for C, mine, theirs in ((Sigma, est.w_groups, ref.estep.w_groups),
+                            (H, est.e_groups, ref.estep.e_groups)):
+        a, b = impute_sum(mine, C)[0], impute_sum(theirs, C)[0]
+        _close(a, b, 1e-8 * max(1.0, np.abs(b).max()))     # relative: psi = 1e-9 scales M up

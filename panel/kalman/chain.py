@@ -9,8 +9,8 @@ with a diffuse (flat) level at the first date.  The posterior precision is ``S^-
 ``S = diag(s_t^2)`` and ``K`` the path Laplacian (``K = D'D``, ``D`` first differences).  With
 ``M = S^{1/2} K S^{1/2} = U diag(lam) U'`` — one tridiagonal eigenproblem per stretch, shared by all
 chains and all parameter values — every chain's posterior covariance is
-``S^{1/2} U diag(w) U' S^{1/2}``, ``w_j = d / (d + lam_j)``: smoothing is two basis transforms and
-the EM sums are closed forms in ``lam``.  With a constant scale, ``U`` is the orthonormal DCT-II
+``S^{1/2} U diag(w) U' S^{1/2}``, ``w_j = d / (d + lam_j)``: the data are transformed to the
+basis once, smoothing is a scaling there, and the EM sums are weighted Gram matrices in the basis.  With a constant scale, ``U`` is the orthonormal DCT-II
 basis and the transforms are FFTs.  The filtered (real-time) moments come from
 :func:`filter_chains`, a scalar recursion vectorised over chains.
 
@@ -83,47 +83,64 @@ def basis_for(s2: np.ndarray) -> Basis:
 
 @dataclass
 class ChainMoments:
-    """Diffuse-start posterior of n chains; arrays are (L, n) or (n,).
+    """Diffuse-start posterior of n chains, kept in the basis: arrays are (L, n) or (n,).
 
-    mean : E[alpha_t | z];  loglik : (n,) diffuse log-likelihood of each chain;
-    first_var : Var(alpha_first | z);  g : Cov(alpha_t, alpha_first | z) / first_var (None unless
-    asked);  sum_dvar : sum_t Var(alpha_t - alpha_{t-1} | z);  sum_var_s2 : sum_t Var(alpha_t | z)
-    / s_t^2;  var : Var(alpha_t | z) per date (None unless asked).
+    coef : ``U' S^{-1/2} E[alpha | z]`` (the smoothed means' coordinates; :meth:`path` maps back);
+    loglik : (n,) diffuse log-likelihood of each chain;  first_mean, first_var : posterior mean and
+    variance of ``alpha_first``;  ghat : coordinates of ``g = Cov(alpha_t, alpha_first | z) /
+    first_var`` (None unless asked);  sum_dvar : sum_t Var(alpha_t - alpha_{t-1} | z);
+    sum_var_s2 : sum_t Var(alpha_t | z) / s_t^2;  var : Var(alpha_t | z) per date (None unless
+    asked).
+
+    In the basis the EM sums need no transform back: ``sum_t x_t x_t' = X' diag(lam) X`` for the
+    differences of a path with coordinates X, and ``sum_t (x_t / s_t)(...)' = X' X``.
     """
 
-    mean: np.ndarray
+    coef: np.ndarray
     loglik: np.ndarray
+    first_mean: np.ndarray
     first_var: np.ndarray
-    g: np.ndarray | None
+    ghat: np.ndarray | None
     sum_dvar: np.ndarray
     sum_var_s2: np.ndarray
     var: np.ndarray | None
 
+    @staticmethod
+    def path(basis: "Basis", coords: np.ndarray) -> np.ndarray:
+        """Per-date values ``S^{1/2} U coords`` (L, n) of coordinates (L, n)."""
+        return basis.s[:, None] * basis.u(coords)
 
-def smooth_chains(basis: Basis, z: np.ndarray, d: np.ndarray, *, want_g: bool = False,
+
+def spectral(basis: Basis, z: np.ndarray) -> np.ndarray:
+    """Coordinates ``zeta = U' S^{-1/2} z`` (L, n) of data ``z`` (L, n) — linear in z, so a fixed
+    panel is transformed once per fit (``zeta`` of ``z V`` is ``spectral(y) V``)."""
+    return basis.ut(z / basis.s[:, None])
+
+
+def smooth_chains(basis: Basis, zeta: np.ndarray, d: np.ndarray, *, want_g: bool = False,
                   want_var: bool = False) -> ChainMoments:
-    """Smooth the chains ``z`` (L, n) with innovation variances ``d`` (n,) >= 0 on ``basis``."""
+    """Smooth chains with coordinates ``zeta`` (L, n) (:func:`spectral`) and innovation variances
+    ``d`` (n,) >= 0 on ``basis``."""
     lam = basis.lam
-    s = basis.s[:, None]
     with np.errstate(invalid="ignore", divide="ignore"):
         w = d[None, :] / (d[None, :] + lam[:, None])
     w[0] = 1.0                                         # the flat level: no shrinkage
-    zeta = basis.ut(z / s)
-    mean = s * basis.u(w * zeta)
+    coef = w * zeta
     logdet = np.log(d[None, :] + lam[1:, None]).sum(axis=0)
     quad = (zeta ** 2 * (1.0 - w)).sum(axis=0)
     loglik = -0.5 * (basis.L * LOG2PI + logdet + quad)
-    u0 = basis.u0
-    first_var = basis.s[0] ** 2 * (u0[:, None] ** 2 * w).sum(axis=0)
-    g = None
+    u0, s0 = basis.u0, basis.s[0]
+    first_var = s0 ** 2 * (u0 ** 2) @ w
+    first_mean = s0 * (u0 @ coef)
+    ghat = None
     if want_g:
-        g = s * basis.u(u0[:, None] * w) * (basis.s[0] / first_var)[None, :]
+        ghat = u0[:, None] * w * (s0 / first_var)[None, :]
     var = None
     if want_var:
         U = basis.matrix()
         var = basis.s[:, None] ** 2 * ((U * U) @ w)
-    return ChainMoments(mean=mean, loglik=loglik, first_var=first_var, g=g,
-                        sum_dvar=(lam[:, None] * w).sum(axis=0), sum_var_s2=w.sum(axis=0), var=var)
+    return ChainMoments(coef=coef, loglik=loglik, first_mean=first_mean, first_var=first_var,
+                        ghat=ghat, sum_dvar=lam @ w, sum_var_s2=w.sum(axis=0), var=var)
 
 
 @dataclass

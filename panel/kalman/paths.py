@@ -15,7 +15,8 @@ from __future__ import annotations
 import numpy as np
 
 from panel.kalman.dense import dense_smoother, first_observations
-from panel.kalman.stretch import final_stretch_start, stretch_smoother
+from panel.kalman.stretch import StretchData, final_stretch_start, stretch_smoother
+from panel.kalman.types import EStep, Smoothed
 
 METHODS = ("auto", "dense", "stretch", "balanced")
 
@@ -63,18 +64,50 @@ def choose(Y, method: str, scale2=None) -> str:
     return min(costs, key=costs.get)
 
 
-def estep(Y, Sigma, H, scale2, init, method: str = "auto"):
-    """Log-likelihood and EM moments at ``(Sigma, H)``; see :func:`panel.kalman.dense.dense_smoother`."""
-    if choose(Y, method, scale2) == "dense":
-        return dense_smoother(Y, Sigma, H, scale2, init=init, want_estep=True).estep
-    return stretch_smoother(Y, Sigma, H, scale2, init=init, want_report=False).estep
+class Plan:
+    """The E-step of one panel, prepared once: the path chosen and the parameter-free transforms
+    of the data done (for the stretch path, the final stretch's basis and data coordinates).
+
+    ``Y`` (T, N) decimal returns with NaN; ``scale2`` (T,) squared volatility scale or None;
+    ``init`` the informative initial premium ``(mean, var)`` or None.  A fit calls
+    :meth:`estep` hundreds of times on the same panel.
+    """
+
+    def __init__(self, Y, scale2=None, init=None, method: str = "auto"):
+        self.Y = np.asarray(Y, dtype=float)
+        T = self.Y.shape[0]
+        self.s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
+        self.init = init
+        self.method = choose(self.Y, method, scale2)
+        self.data = None
+        if self.method == "stretch":
+            a = final_stretch_start(self.Y)
+            if a < T:
+                self.data = StretchData(self.Y, self.s2, a)
+
+    def estep(self, Sigma, H, h_parts=None) -> EStep:
+        """Log-likelihood and EM moments at ``(Sigma, H)``; ``h_parts = (B, psi)`` when
+        ``H = B B' + diag(psi)`` (a cheaper exact eigenproblem on the stretch path)."""
+        if self.data is None:
+            return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True).estep
+        return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,
+                                data=self.data, h_parts=h_parts).estep
+
+    def report(self, Sigma, H, Lambda=None, cov_at=()) -> Smoothed:
+        """Per-date filtered/smoothed/predicted moments (factor paths when ``Lambda`` is given),
+        without EM moments."""
+        if self.data is None:
+            return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, Lambda=Lambda,
+                                  cov_at=cov_at, want_estep=False)
+        return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, Lambda=Lambda,
+                                cov_at=cov_at, want_estep=False, data=self.data)
 
 
-def report(Y, Sigma, H, scale2, init, Lambda=None, cov_at=(), method: str = "auto"):
-    """Per-date filtered/smoothed/predicted moments (and factor paths when ``Lambda`` is given) as a
-    :class:`panel.kalman.types.Smoothed`, without EM moments."""
-    if choose(Y, method, scale2) == "dense":
-        return dense_smoother(Y, Sigma, H, scale2, init=init, Lambda=Lambda, cov_at=cov_at,
-                              want_estep=False)
-    return stretch_smoother(Y, Sigma, H, scale2, init=init, Lambda=Lambda, cov_at=cov_at,
-                            want_estep=False)
+def estep(Y, Sigma, H, scale2, init, method: str = "auto") -> EStep:
+    """Log-likelihood and EM moments at ``(Sigma, H)`` (one-off; a fit reuses a :class:`Plan`)."""
+    return Plan(Y, scale2, init, method).estep(Sigma, H)
+
+
+def report(Y, Sigma, H, scale2, init, Lambda=None, cov_at=(), method: str = "auto") -> Smoothed:
+    """Per-date moments as a :class:`panel.kalman.types.Smoothed`, without EM moments (one-off)."""
+    return Plan(Y, scale2, init, method).report(Sigma, H, Lambda=Lambda, cov_at=cov_at)

@@ -53,6 +53,7 @@ class _Problem:
         self.sigma_prior = self._prior(spec.premium_prior)
         self.h_prior = self._prior(spec.return_prior)
         self.n_obs = int((~np.isnan(self.Y)).sum())
+        self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
 
     def _prior(self, prior):
         if prior is None:
@@ -60,7 +61,10 @@ class _Problem:
         return ms.PriorTerms(weight=prior.weight, v=prior.vol ** 2 / self.rs.ppy)
 
     def estep(self, p: Params):
-        return paths.estep(self.Y, p.Sigma, p.H, self.s2, self.init, self.spec.method)
+        parts = None
+        if p.psi is not None:           # diagonal or factor H: the cheaper exact eigenproblem
+            parts = (np.zeros((p.n_assets, 0)) if p.B is None else p.B, p.psi)
+        return self.plan.estep(p.Sigma, p.H, h_parts=parts)
 
     def objective(self, e, p: Params) -> float:
         return e.loglik + ms.log_prior(p, self.sigma_prior, self.h_prior)
@@ -205,7 +209,7 @@ def covariance_at(res: PanelFit, t: int, kind: str):
     """(mean, cov, active mask) of the premia at date index ``t`` (one dense pass)."""
     prob = _Problem(res.panel, res.spec)
     p = res.params
-    out = paths.report(prob.Y, p.Sigma, p.H, prob.s2, prob.init, cov_at=(t,), method=res.spec.method)
+    out = prob.plan.report(p.Sigma, p.H, cov_at=(t,))
     mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
     active = ~np.isnan(mean)
     cov = out.covariances[t][kind][np.ix_(active, active)]
@@ -215,7 +219,7 @@ def covariance_at(res: PanelFit, t: int, kind: str):
 def _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se, elapsed):
     rs, panel = prob.rs, prob.panel
     lam = p.Lambda if rs.k else None
-    out = paths.report(prob.Y, p.Sigma, p.H, prob.s2, prob.init, Lambda=lam, method=prob.spec.method)
+    out = prob.plan.report(p.Sigma, p.H, Lambda=lam)
     assets = list(panel.assets)
     T, N = prob.Y.shape
     active = ~np.isnan(out.filtered_mean)

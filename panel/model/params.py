@@ -7,6 +7,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -36,10 +37,13 @@ class Params:
                 arr.setflags(write=False)
                 object.__setattr__(self, name, arr)
 
-    @property
+    @cached_property
     def Sigma(self) -> np.ndarray:
-        """(N, N) premium innovation covariance ``Lambda Lambda' + diag(q)``."""
-        return self.Lambda @ self.Lambda.T + np.diag(self.q)
+        """(N, N) premium innovation covariance ``Lambda Lambda' + diag(q)`` (read-only; built once:
+        an EM iteration reads it several times)."""
+        S = self.Lambda @ self.Lambda.T + np.diag(self.q)
+        S.setflags(write=False)
+        return S
 
     @property
     def n_assets(self) -> int:
