@@ -18,11 +18,12 @@ This path is O(T (k + N)^3); it is the oracle that every faster path is checked 
 
 from __future__ import annotations
 
-from collections import defaultdict
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import linalg
+from scipy.linalg.blas import dtrsm
+from scipy.linalg.lapack import dpotrf
 
 from panel.kalman.types import EStep, MomentGroup, Smoothed
 
@@ -39,17 +40,6 @@ def first_observations(Y: np.ndarray) -> np.ndarray:
 
 def _sym(P: np.ndarray) -> np.ndarray:
     return 0.5 * (P + P.T)
-
-
-def _solve_pd(A: np.ndarray, B: np.ndarray) -> np.ndarray:
-    """A^{-1} B for symmetric positive (semi)definite A: Cholesky, pseudo-inverse only if singular."""
-    if A.shape[0] == 0:
-        return np.zeros_like(B)
-    try:
-        return linalg.cho_solve(linalg.cho_factor(A, lower=True, check_finite=False), B,
-                                check_finite=False)
-    except linalg.LinAlgError:
-        return np.linalg.pinv(A, hermitian=True) @ B
 
 
 def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
@@ -91,6 +81,72 @@ def joint_innovation_cov(Sigma, Lambda=None) -> np.ndarray:
     return Q
 
 
+# ---------------------------------------------------------------- small exact kernels
+# The per-date matrices are small (up to k + N), so the scipy wrappers' checks and the 2-D fancy
+# indexing cost more than the arithmetic: call LAPACK/BLAS directly and index with slices
+# wherever the positions are a contiguous run (the usual case: assets in entry order).
+
+def _chol(A: np.ndarray) -> np.ndarray:
+    """Lower Cholesky factor of the symmetric positive definite (n, n) ``A`` from its lower
+    triangle, as a Fortran array whose upper triangle is left uncleared (only the lower is ever
+    read).  Raises ``LinAlgError`` if ``A`` is not positive definite."""
+    c, info = dpotrf(A, lower=1, clean=0)
+    if info != 0:
+        raise linalg.LinAlgError(f"matrix not positive definite (LAPACK dpotrf info={info})")
+    return c
+
+
+def _solve_right_pd(B: np.ndarray, A: np.ndarray) -> np.ndarray:
+    """(m, n) ``B A^{-1}`` for symmetric positive (semi)definite (n, n) ``A``: two triangular
+    solves with its Cholesky factor, the pseudo-inverse only if ``A`` is singular."""
+    if A.shape[0] == 0:
+        return np.zeros_like(B)
+    try:
+        c = _chol(A)
+    except linalg.LinAlgError:
+        return B @ np.linalg.pinv(A, hermitian=True)
+    X = dtrsm(1.0, c, B, side=1, lower=1, trans_a=1)          # X L' = B (into a copy of B)
+    return dtrsm(1.0, c, X, side=1, lower=1, overwrite_b=1)   # J L = X: J = B L^-T L^-1
+
+
+def _compact(idx: np.ndarray):
+    """Strictly increasing positions as a slice when they are one contiguous run (indexing then
+    gives a view, not a copy), else the array itself."""
+    n = idx.size
+    if n and int(idx[-1]) - int(idx[0]) == n - 1:
+        return slice(int(idx[0]), int(idx[0]) + n)
+    return idx
+
+
+def _sub(A: np.ndarray, rows, cols=None) -> np.ndarray:
+    """``A[rows][:, cols]`` (``cols`` defaults to ``rows``) for indices from :func:`_compact`:
+    a view when both are slices."""
+    return A[rows][:, rows if cols is None else cols]
+
+
+def _memo(build):
+    """``build`` memoised on its arguments' bytes (index arrays and masks)."""
+    cache = {}
+
+    def get(*args):
+        key = tuple(a.tobytes() for a in args)
+        hit = cache.get(key)
+        if hit is None:
+            hit = cache[key] = build(*args)
+        return hit
+    return get
+
+
+def _bordered(P: np.ndarray, D: np.ndarray) -> np.ndarray:
+    """(n + e, n + e) block diagonal ``[[P, 0], [0, D]]``: a state joined by new components."""
+    n = P.shape[0]
+    out = np.zeros((n + D.shape[0],) * 2)
+    out[:n, :n] = P
+    out[n:, n:] = D
+    return out
+
+
+# ---------------------------------------------------------------- filter
 @dataclass
 class Filtered:
     """Dense filter output for dates ``0..stop-1``: per-date active assets, filtered and predicted
@@ -115,77 +171,109 @@ class Filtered:
         return self.mf[-1], self.Pf[-1] + self.Q[np.ix_(idx, idx)], prev
 
 
+class _FilterStep:
+    """The index work of one filter date, shared by every date with the same assets in the
+    predicted state (``prev``) and the same observed assets (``observed``, sorted).
+
+    The state after the date is ``(f, mu[alive])``; entrants (observed, not in ``prev``) join it:
+    with a prior (``informative``) before the update, like any other state; diffusely after it,
+    pinned by their own returns (the module docstring).
+    """
+
+    def __init__(self, prev, observed, k, Q, H, informative):
+        self.Q = _sub(Q, _compact(np.concatenate([np.arange(k), k + prev])))
+        posmap = np.full(H.shape[0], -1)                      # asset -> position in the state
+        posmap[prev] = k + np.arange(prev.size)
+        known = posmap[observed] >= 0
+        entering = observed[~known]
+        if informative:                                       # entrants join with the prior
+            self.joined, self.E, self.C = entering, entering[:0], observed
+            posmap[entering] = k + prev.size + np.arange(entering.size)
+            pc = posmap[self.C]                               # increasing unless joined < prev
+            self.pc = _compact(pc) if (pc[1:] > pc[:-1]).all() else pc
+        else:                                                 # entrants join diffusely
+            self.joined, self.E, self.C = entering[:0], entering, observed[known]
+            self.pc = _compact(posmap[self.C])
+        c, e = _compact(self.C), _compact(self.E)
+        self.HCC, self.HEC, self.HEE = _sub(H, c), _sub(H, e, c), _sub(H, e)
+        state = np.concatenate([prev, self.joined, self.E])
+        self.alive, self.perm = state, None
+        if (state[1:] < state[:-1]).any():                    # back to asset order
+            order = np.argsort(state, kind="stable")
+            self.alive = state[order]
+            self.perm = np.concatenate([np.arange(k), k + order])
+
+    def update(self, m, P, y, s2, init, innov, innov_var):
+        """Filtered ``(m, P)`` over ``(f, mu[alive])`` from the predicted (n,) ``m``, (n, n) ``P``
+        and the (N,) returns ``y`` with scale ``s2``; returns them with the log-likelihood
+        contribution and writes the (N,) rows ``innov``, ``innov_var`` at the observed assets."""
+        if self.joined.size:
+            m = np.concatenate([m, np.full(self.joined.size, float(init[0]))])
+            P = _bordered(P, init[1] * np.eye(self.joined.size))
+        e = self.E.size
+        loglik = -0.5 * e * LOG2PI
+        if e:
+            m = np.concatenate([m, y[self.E]])
+            base = _bordered(P, s2 * self.HEE)
+        else:
+            base = P
+        if self.C.size:
+            # One triangular solve against F = L L' gives every term: with the rows
+            # Z = [P_xC; -H_EC] L^-T and u = L^-1 v, the update of (x, mu_E = y_E - eps_E) is
+            # mean += Z u, cov = diag(P, H_EE) - Z Z' (the cross block P_xC F^-1 H_CE is the
+            # covariance of x with mu_E; D&K 2012 ch. 5 for the diffuse entry).
+            n, p = P.shape[0], self.C.size
+            v = y[self.C] - m[self.pc]
+            F = _sub(P, self.pc) + s2 * self.HCC
+            c = _chol(F)
+            B = np.empty((n + e + 1, p), order="F")
+            B[:n] = P[:, self.pc]
+            B[n:n + e] = -s2 * self.HEC
+            B[-1] = v
+            X = dtrsm(1.0, c, B, side=1, lower=1, trans_a=1, overwrite_b=1)     # X L' = B
+            Z, u = X[:-1], X[-1]
+            m = m + Z @ u
+            P = _sym(base - Z @ Z.T)
+            loglik -= 0.5 * (p * LOG2PI + 2.0 * np.log(c.diagonal()).sum() + u @ u)
+            innov[self.C] = v
+            innov_var[self.C] = F.diagonal()
+        else:
+            P = base
+        if self.perm is not None:
+            m = m[self.perm]
+            P = _sub(P, self.perm)
+        return m, P, loglik
+
+
 def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None) -> Filtered:
     """Dense exact-diffuse filter over dates ``0..stop-1`` (all dates when ``stop`` is None); the
     arguments are those of :func:`dense_smoother` with ``s2`` the (T,) squared scale."""
     T, N = Y.shape
     stop = T if stop is None else stop
-    Sigma = np.asarray(Sigma, dtype=float)
     H = np.asarray(H, dtype=float)
     k = 0 if Lambda is None else Lambda.shape[1]
     obs = ~np.isnan(Y)
-    entry = first_observations(Y)
-    Q = joint_innovation_cov(Sigma, Lambda)
+    first_observations(Y)                                     # every asset is observed once
+    Q = joint_innovation_cov(np.asarray(Sigma, dtype=float), Lambda)
 
     alive, mf, Pf, mp, Pp = [], [], [], [], []
     innov = np.full((T, N), np.nan)
     innov_var = np.full((T, N), np.nan)
     loglik = 0.0
+    step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), k, Q, H,
+                                                        init is not None))
     prev = np.zeros(0, dtype=int)
     m = np.zeros(k)
     P = np.zeros((k, k))
-    fidx = np.arange(k)
     for t in range(stop):
+        step = step_for(prev, obs[t])
         if t > 0:
-            idx = np.concatenate([fidx, k + prev])
-            P = P + Q[np.ix_(idx, idx)]
+            P = P + step.Q
         mp.append(m)
         Pp.append(P)
-        entering = np.flatnonzero(entry == t)
-        observed = np.flatnonzero(obs[t])
-        Ht = s2[t] * H
-        state_assets = prev
-        if init is not None and entering.size:
-            m0, v0 = init
-            m = np.concatenate([m, np.full(entering.size, m0)])
-            P = linalg.block_diag(P, v0 * np.eye(entering.size))
-            state_assets = np.concatenate([prev, entering])
-            entering = entering[:0]
-        posmap = np.full(N, -1)
-        posmap[state_assets] = k + np.arange(state_assets.size)
-        C = observed[posmap[observed] >= 0]
-        pc = posmap[C]
-        if C.size:
-            v = Y[t, C] - m[pc]
-            F = P[np.ix_(pc, pc)] + Ht[np.ix_(C, C)]
-            cf = linalg.cho_factor(F, lower=True, check_finite=False)
-            PZ = P[:, pc]
-            Fiv = linalg.cho_solve(cf, v, check_finite=False)
-            m = m + PZ @ Fiv
-            P = _sym(P - PZ @ linalg.cho_solve(cf, PZ.T, check_finite=False))
-            loglik -= 0.5 * (C.size * LOG2PI + 2.0 * np.log(np.diag(cf[0])).sum() + v @ Fiv)
-            innov[t, C] = v
-            innov_var[t, C] = np.diag(F)
-        if entering.size:
-            HEE = Ht[np.ix_(entering, entering)]
-            if C.size:
-                G = linalg.cho_solve(cf, Ht[np.ix_(C, entering)], check_finite=False).T  # H_EC F^-1
-                mean_eps = G @ v
-                cross = PZ @ G.T                       # Cov(x, mu_E) = -Cov(x, eps_E | y_C)
-                V = _sym(HEE - G @ Ht[np.ix_(C, entering)])
-            else:
-                mean_eps = np.zeros(entering.size)
-                cross = np.zeros((m.size, entering.size))
-                V = HEE
-            m = np.concatenate([m, Y[t, entering] - mean_eps])
-            P = np.block([[P, cross], [cross.T, V]])
-            state_assets = np.concatenate([state_assets, entering])
-            loglik -= 0.5 * entering.size * LOG2PI
-        order = np.argsort(state_assets, kind="stable")
-        perm = np.concatenate([fidx, k + order])
-        m = m[perm]
-        P = P[np.ix_(perm, perm)]
-        prev = state_assets[order]
+        m, P, ll = step.update(m, P, Y[t], s2[t], init, innov[t], innov_var[t])
+        loglik += ll
+        prev = step.alive
         alive.append(prev)
         mf.append(m)
         Pf.append(P)
@@ -194,6 +282,8 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None) -> Filte
 
 
 def _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2):
+    """Filtered and predicted means and variances as (T, N) arrays (NaN where not active) and the
+    factors' as (T, k)."""
     fm = np.full((T, N), np.nan)
     fv = np.full((T, N), np.nan)
     pm = np.full((T, N), np.nan)
@@ -202,15 +292,43 @@ def _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2):
     ffv = np.zeros((T, k))
     for t in range(T):
         a = alive[t]
+        d = Pf[t].diagonal()
         fm[t, a] = mf[t][k:]
-        fv[t, a] = np.diag(Pf[t])[k:]
+        fv[t, a] = d[k:]
         ffm[t] = mf[t][:k]
-        ffv[t] = np.diag(Pf[t])[:k]
+        ffv[t] = d[:k]
         if t > 0:
             b = alive[t - 1]
             pm[t, b] = mp[t][k:]
-            pv[t, b] = np.diag(Pp[t])[k:]
+            pv[t, b] = Pp[t].diagonal()[k:]
     return {"fm": fm, "fv": fv, "pm": pm, "pv": pv, "ffm": ffm, "ffv": ffv}
+
+
+# ---------------------------------------------------------------- smoother
+class _MomentSum:
+    """Running ``sum_t E[x_t x_t' | Y]`` over the dates of one component set (``mask`` (N,)):
+    the means are kept as rows and multiplied once at the end, the covariances summed as they
+    come; ``lag`` terms ``L_t`` enter as ``-(L_t + L_t')`` (for differences ``x_t - x_{t-1}``).
+    The first ``cov`` and ``lag`` passed are kept as the running sums: pass fresh arrays."""
+
+    def __init__(self, mask):
+        self.mask, self.rows, self.cov, self.lag = mask, [], None, None
+
+    def add(self, mean, cov, lag=None):
+        self.rows.append(mean)
+        if self.cov is None:
+            self.cov, self.lag = cov, lag
+        else:
+            self.cov += cov
+            if lag is not None:
+                self.lag += lag
+
+    def group(self) -> MomentGroup:
+        R = np.array(self.rows)
+        M = R.T @ R + self.cov
+        if self.lag is not None:
+            M -= self.lag + self.lag.T
+        return MomentGroup(self.mask, len(self.rows), _sym(M))
 
 
 def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep, cov_at, want_estep,
@@ -219,26 +337,47 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
     gives the smoothed and predicted state at date T (after the last filtered one, from a faster
     path); the smoother then starts there, so the moments of ``w_T`` are included."""
     T, N = Y.shape
+    scale = np.sqrt(s2)
     sm = np.full((T, N), np.nan)
     sv = np.full((T, N), np.nan)
     fsm = np.zeros((T, k))
     fsv = np.zeros((T, k))
-    w_sum = defaultdict(lambda: [None, 0, None])
-    e_sum = defaultdict(lambda: [None, 0, None])
+    w_sum, e_sum = {}, {}
     covs = {}
+
+    def moment_sum(sums, members):
+        mask = np.zeros(N, bool)
+        mask[members] = True
+        key = mask.tobytes()
+        if key not in sums:
+            sums[key] = _MomentSum(mask)
+        return sums[key]
+
+    @_memo
+    def w_step(a_prev, a_now):
+        """Positions of the previous date's state in this date's (order (f, mu[alive])), and the
+        moment sum of w over the previous date's assets."""
+        pos = np.concatenate([np.arange(k), k + np.searchsorted(a_now, a_prev)])
+        return _compact(pos), moment_sum(w_sum, a_prev)
+
+    @_memo
+    def e_step(a_now, observed):
+        """Observed assets, their state positions and the moment sum of eps over them."""
+        O = np.flatnonzero(observed)
+        acc = moment_sum(e_sum, O) if O.size else None
+        return O, _compact(k + np.searchsorted(a_now, O)), acc
 
     def record(t, m, P):
         a = alive[t]
+        d = P.diagonal()
         sm[t, a] = m[k:]
-        sv[t, a] = np.diag(P)[k:]
+        sv[t, a] = d[k:]
         fsm[t] = m[:k]
-        fsv[t] = np.diag(P)[:k]
+        fsv[t] = d[:k]
         if want_estep:
-            O = np.flatnonzero(obs[t])
+            O, po, acc = e_step(a, obs[t])
             if O.size:
-                po = k + np.searchsorted(a, O)
-                r = Y[t, O] - m[po]
-                _accumulate(e_sum, O, N, (np.outer(r, r) + P[np.ix_(po, po)]) / s2[t])
+                acc.add((Y[t, O] - m[po]) / scale[t], _sub(P, po) / s2[t])
         if t in cov_at:
             full_f = np.full((N, N), np.nan)
             full_s = np.full((N, N), np.nan)
@@ -255,42 +394,27 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
         alive, mp, Pp = alive + [a_next], mp + [m_next], Pp + [P_next]
         last = T
     for t in range(last, 0, -1):
-        a_prev = alive[t - 1]
-        pos = np.concatenate([np.arange(k), k + np.searchsorted(alive[t], a_prev)])
-        J = _solve_pd(Pp[t], Pf[t - 1]).T                  # Pf_{t-1} Pp_t^{-1}
-        ms_prev = mf[t - 1] + J @ (ms[pos] - mp[t])
-        Ps_prev = _sym(Pf[t - 1] + J @ (Ps[np.ix_(pos, pos)] - Pp[t]) @ J.T)
-        if want_estep:
-            lag = Ps[:, pos] @ J.T                         # Cov(x_t, x_{t-1} | Y)
-            a = pos[k:]
-            b = k + np.arange(a_prev.size)
-            cross = lag[np.ix_(a, b)] + np.outer(ms[a], ms_prev[b])
-            M = (Ps[np.ix_(a, a)] + np.outer(ms[a], ms[a]) - cross - cross.T
-                 + Ps_prev[np.ix_(b, b)] + np.outer(ms_prev[b], ms_prev[b]))
-            _accumulate(w_sum, a_prev, N, M)
+        pos, acc = w_step(alive[t - 1], alive[t])
+        # J = Pf' Pp^-1; the transposed view of the C-ordered Pf is already in LAPACK's order
+        J = _solve_right_pd(Pf[t - 1].T, Pp[t])
+        ms_pos, Ps_pos = ms[pos], _sub(Ps, pos)
+        ms_prev = mf[t - 1] + J @ (ms_pos - mp[t])
+        # K = Cov(x_t, x_{t-1} | Y) = Ps_t J'; since Pp_t J' = Pf_{t-1}, the RTS update
+        # Pf + J (Ps_t - Pp_t) J' is Pf + J (K - Pf): one product fewer
+        K = Ps_pos @ J.T
+        Ps_prev = _sym(Pf[t - 1] + J @ (K - Pf[t - 1]))
+        if want_estep:                  # w_t = mu_t - mu_{t-1} over the previous date's assets
+            acc.add(ms_pos[k:] - ms_prev[k:], Ps_pos[k:, k:] + Ps_prev[k:, k:], K[k:, k:])
         ms, Ps = ms_prev, Ps_prev
         record(t - 1, ms, Ps)
 
     estep = None
     if want_estep:
-        estep = EStep(loglik=loglik,
-                      w_groups=[MomentGroup(v[0], v[1], _sym(v[2])) for v in w_sum.values()],
-                      e_groups=[MomentGroup(v[0], v[1], _sym(v[2])) for v in e_sum.values()])
+        estep = EStep(loglik=loglik, w_groups=[g.group() for g in w_sum.values()],
+                      e_groups=[g.group() for g in e_sum.values()])
     return Smoothed(loglik=loglik, filtered_mean=rep["fm"], filtered_var=rep["fv"],
                     smoothed_mean=sm, smoothed_var=sv, predicted_mean=rep["pm"],
                     predicted_var=rep["pv"], innovation=innov, innovation_var=innov_var,
                     factor_filtered_mean=rep["ffm"], factor_filtered_var=rep["ffv"],
                     factor_smoothed_mean=fsm, factor_smoothed_var=fsv, estep=estep,
                     covariances=covs)
-
-
-def _accumulate(groups, members, N, M):
-    mask = np.zeros(N, bool)
-    mask[members] = True
-    key = mask.tobytes()
-    g = groups[key]
-    if g[0] is None:
-        g[0], g[1], g[2] = mask, 1, M.copy()
-    else:
-        g[1] += 1
-        g[2] += M
