@@ -370,7 +370,8 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     head = None
     if flt is not None:
         loglik += flt.loglik
-        rep = dense._report_arrays(a, N, k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
+        rep = (dense._report_arrays(a, N, k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
+               if want_report else dict.fromkeys(("fm", "fv", "pm", "pv", "ffm", "ffv")))
         head = dense._smooth(Y[:a], ~np.isnan(Y[:a]), s2[:a], k, flt.alive, flt.mf, flt.Pf,
                              flt.mp, flt.Pp, flt.loglik, flt.innov[:a], flt.innov_var[:a], rep,
                              cov_at={t for t in cov_at if t < a}, want_estep=want_estep,
