@@ -13,6 +13,10 @@ expected complete-data log-likelihood, so the whole iteration is a generalised E
 
 MAP priors (:class:`panel.model.spec.Prior`) add ``weight`` pseudo-periods with covariance ``v I``:
 the target becomes ``(S_sum + weight v I) / (n + weight)``.
+
+Cost for large N: the imputation shares one Cholesky factor across nested masks (a staircase of
+entries or exits) instead of one solve per group, and the score and the log prior use the factor
+structure of ``Sigma`` and ``H`` (Woodbury, no N x N inverse): O(N^2 m) beyond the imputation.
 """
 
 from __future__ import annotations
@@ -20,6 +24,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import linalg
+from scipy.linalg import blas, lapack
 
 from panel.kalman.types import MomentGroup
 from panel.model.params import Params, canonical_loadings
@@ -31,6 +37,11 @@ VAR_FLOOR = 1e-9        # lower bound of every variance, relative to the asset's
                         # at a boundary instead of crawling towards zero
 BOUNDARY_RATIO = 1e-8   # premium innovation variance below this fraction of the return-shock
                         # variance: the premium is constant in practice (a boundary solution)
+PER_GROUP_FLOPS = 5e5   # Python overhead of one group in impute_sum's per-group route, in flops
+MAX_CHAINS = 8          # masks that fit none of this many chains take the per-group route
+RATIO_EXACT = 1e2       # ||L_i||^2 / d_i above this: row i of L L' + diag(d) is eliminated exactly
+                        # (Schur complement) instead of through d_i^{-1}, whose cancellation would
+                        # cost about log10 of the ratio in digits
 
 
 @dataclass(frozen=True)
@@ -45,29 +56,205 @@ def impute_sum(groups: list[MomentGroup], C: np.ndarray) -> tuple[np.ndarray, in
     """Sum of full second moments over all groups, unseen components filled in under ``C`` (N, N).
 
     For seen set A and unseen U: ``E[x_U | x_A] = G x_A`` with ``G = C_UA C_AA^{-1}``, so a group's
-    full moment is ``[[M, M G'], [G M, G M G' + n C_{U|A}]]``.
+    full moment is ``[[M, M G'], [G M, G M G' + n C_{U|A}]]``.  Returns the (N, N) sum and the
+    total count.
+
+    Exact routes, all for the same sum: groups with the same mask are merged first (the moment is
+    linear in ``M`` and ``n``); a diagonal ``C`` needs no regression; chains of nested masks (assets
+    entering one by one, or leaving) share one Cholesky factor (:func:`_nested_sum`); other masks
+    are done one by one (:func:`_add_group`).
     """
     N = C.shape[0]
-    total = np.zeros((N, N))
-    n = 0
+    merged: dict[bytes, list] = {}
     for g in groups:
-        A = g.mask
-        U = ~A
-        n += g.count
-        if not U.any():
-            total += g.M
-            continue
-        CAA = C[np.ix_(A, A)]
-        CUA = C[np.ix_(U, A)]
-        G = np.linalg.solve(CAA, CUA.T).T if A.any() else np.zeros((U.sum(), 0))
-        GM = G @ g.M
-        block = np.zeros((N, N))
-        block[np.ix_(A, A)] = g.M
-        block[np.ix_(U, A)] = GM
-        block[np.ix_(A, U)] = GM.T
-        block[np.ix_(U, U)] = GM @ G.T + g.count * (C[np.ix_(U, U)] - G @ CUA.T)
-        total += block
+        mask = np.asarray(g.mask, bool)
+        key = mask.tobytes()
+        if key in merged:
+            merged[key][1] += g.count
+            merged[key][2] = merged[key][2] + g.M
+        else:
+            merged[key] = [mask, g.count, np.asarray(g.M, float)]
+    n = sum(v[1] for v in merged.values())
+    total = np.zeros((N, N))
+    partial = []
+    for mask, count, M in merged.values():
+        if mask.all():
+            total += M
+        elif not mask.any():
+            total += count * C
+        else:
+            partial.append((mask, count, M))
+    if not partial:
+        return 0.5 * (total + total.T), n
+    if not np.any(C - np.diag(np.diag(C))):
+        # C_UA = 0: nothing to regress, an unseen component contributes n C_ii on the diagonal
+        cdiag = np.diag(C)
+        for mask, count, M in partial:
+            _add_square(total, np.flatnonzero(mask), M)
+            total[np.diag_indices(N)] += np.where(mask, 0.0, count * cdiag)
+        return 0.5 * (total + total.T), n
+    rest = []
+    for chain in _chains(partial):
+        if len(chain) >= 2 and _nested_cheaper(chain, N):
+            try:
+                total += _nested_sum(chain, C)
+                continue
+            except np.linalg.LinAlgError:    # C not positive definite: the per-group route copes
+                pass
+        rest.extend(chain)
+    precision = None                         # C^{-1}, computed once if a group can use it
+    for mask, count, M in rest:
+        few_unseen = 2 * (~mask).sum() < mask.sum()
+        if few_unseen and precision is None:
+            try:
+                precision = linalg.cho_solve(linalg.cho_factor(C, lower=True), np.eye(N))
+            except np.linalg.LinAlgError:
+                precision = False
+        use = precision if few_unseen and precision is not False else None
+        _add_group(total, mask, count, M, C, use)
     return 0.5 * (total + total.T), n
+
+
+def _chains(partial: list) -> list[list]:
+    """Greedy partition of masks into chains ``A_1 ⊂ A_2 ⊂ ...`` (each returned smallest first).
+
+    Masks are taken largest first and appended to the first chain whose smallest mask contains
+    them; beyond ``MAX_CHAINS`` chains a mask becomes a chain of its own (per-group route)."""
+    chains: list[list] = []
+    singles = []
+    for item in sorted(partial, key=lambda it: -int(it[0].sum())):
+        for chain in chains:
+            if not (item[0] & ~chain[-1][0]).any():
+                chain.append(item)
+                break
+        else:
+            (chains if len(chains) < MAX_CHAINS else singles).append([item])
+    return [chain[::-1] for chain in chains] + singles
+
+
+def _nested_cheaper(chain: list, N: int) -> bool:
+    """Rough flop model (both routes are exact; this only picks the faster): the nested route
+    costs ~4 N^3 plus a little per level; one group with s seen and u unseen components costs
+    ~min(2 s^3 / 3, u^3) + 4 u s^2 (solve or partitioned precision, then G M and G M G') plus
+    Python overhead worth ~PER_GROUP_FLOPS."""
+    sizes = np.array([item[0].sum() for item in chain], float)
+    unseen = N - sizes
+    one_by_one = np.minimum(2 * sizes ** 3 / 3, unseen ** 3) + 4 * unseen * sizes ** 2
+    return 4.0 * N ** 3 + 0.3 * PER_GROUP_FLOPS * len(chain) < (one_by_one + PER_GROUP_FLOPS).sum()
+
+
+def _nested_sum(chain: list, C: np.ndarray) -> np.ndarray:
+    """Full moments of groups with nested seen sets ``A_1 ⊂ ... ⊂ A_c`` from one Cholesky factor.
+
+    Order the components by entry (``A_1``, then ``A_2 \\ A_1``, ..., then never seen) so that
+    each seen set is a leading block, and let ``C = L L'`` there, ``x = L z`` with ``z ~ N(0, I)``.
+    A group seeing the first ``s`` components knows ``z_{:s} = L_s^{-1} x_{:s}`` and nothing about
+    ``z_{s:}``, so its full moment is ``L blockdiag(X, n I) L'`` with ``X = L_s^{-1} M L_s^{-T}``:
+    the sum is ``L (K + diag(e)) L'`` with ``K`` the padded sum of the ``X`` and ``e_p`` the count
+    of groups not seeing component p.  As ``L_s^{-1}`` is the leading block of ``W = L^{-1}``,
+    ``K_ij = (W Q W')_ij`` with ``Q`` the padded sum of the ``M`` of the groups seeing both i and
+    j; for ``max(i, j)`` in the block ``[s_{l-1}, s_l)`` that is ``Q_l = sum_{l' >= l} M_{l'}``.  So
+    one pass from the largest set down, accumulating ``Q_l``, gives ``Y = Q_l W'`` on each column
+    block, and ``K`` is the upper triangle of ``L^{-1} Y``: O(N^3 + sum s^2) in all, against
+    O(s^3 + N^2 s) per group one by one.  ``Q_l`` is kept in the sorted order of ``A_l`` (the order
+    of the M's), so that shrinking it to the next set is a copy of a few slices, not a gather.
+    """
+    N = C.shape[0]
+    masks = [item[0] for item in chain]
+    sizes = [int(m.sum()) for m in masks]
+    seen_before = np.zeros(N, bool)
+    blocks = []
+    for m in masks:
+        blocks.append(np.flatnonzero(m & ~seen_before))
+        seen_before = m
+    blocks.append(np.flatnonzero(~seen_before))
+    perm = np.concatenate(blocks)
+    L = np.linalg.cholesky(C[np.ix_(perm, perm)])
+    W, info = lapack.dtrtri(L, lower=1)           # L^{-1}
+    if info != 0:
+        raise np.linalg.LinAlgError("singular Cholesky factor")
+    Y = np.zeros((N, N))
+    e = np.zeros(N)
+    Q, prev = None, None
+    for l in range(len(chain) - 1, -1, -1):
+        mask, count, M = chain[l]
+        s, lo = sizes[l], (sizes[l - 1] if l else 0)
+        seen = np.flatnonzero(mask)
+        Q = M.copy() if Q is None else _take_square(Q, np.searchsorted(prev, seen)) + M
+        pos = np.searchsorted(seen, perm[:s])         # entry order -> sorted order of A_l
+        w = np.zeros((s, s - lo))
+        w[pos] = W[lo:s, :s].T                         # columns [lo, s) of W', rows sorted
+        Y[:s, lo:s] = (Q @ w)[pos]
+        e[s:] += count
+        prev = seen
+    Kc = linalg.solve_triangular(L, Y, lower=True, check_finite=False)
+    K = np.triu(Kc)
+    K += np.triu(Kc, 1).T
+    K[np.diag_indices(N)] += e
+    LK = blas.dtrmm(1.0, L, K, lower=1)
+    part = blas.dtrmm(1.0, L, LK, side=1, lower=1, trans_a=1)
+    out = np.empty((N, N))
+    out[np.ix_(perm, perm)] = part
+    return out
+
+
+def _runs(idx: np.ndarray, most: int = 5):
+    """Runs of consecutive values in sorted ``idx`` as (start, stop, first, last + 1), or None
+    when there are more than ``most``."""
+    cuts = np.flatnonzero(np.diff(idx) != 1) + 1
+    if cuts.size >= most:
+        return None
+    ends = np.concatenate([[0], cuts, [idx.size]])
+    return [(a, b, idx[a], idx[b - 1] + 1) for a, b in zip(ends[:-1], ends[1:])]
+
+
+def _take_square(Q: np.ndarray, idx: np.ndarray) -> np.ndarray:
+    """``Q[idx][:, idx]`` for sorted ``idx`` (a view when ``idx`` is one run)."""
+    runs = _runs(idx)
+    if runs is None:
+        return Q[np.ix_(idx, idx)]
+    if len(runs) == 1:
+        _, _, i0, i1 = runs[0]
+        return Q[i0:i1, i0:i1]
+    out = np.empty((idx.size, idx.size))
+    for a0, a1, i0, i1 in runs:
+        for b0, b1, j0, j1 in runs:
+            out[a0:a1, b0:b1] = Q[i0:i1, j0:j1]
+    return out
+
+
+def _add_square(total: np.ndarray, idx: np.ndarray, M: np.ndarray) -> None:
+    """``total[idx, idx] += M`` for sorted ``idx``, by slices when ``idx`` has few runs (a mask
+    with a few gaps): fancy indexing is several times slower."""
+    runs = _runs(idx)
+    if runs is None:
+        total[np.ix_(idx, idx)] += M
+        return
+    for a0, a1, i0, i1 in runs:
+        for b0, b1, j0, j1 in runs:
+            total[i0:i1, j0:j1] += M[a0:a1, b0:b1]
+
+
+def _add_group(total, mask, count, M, C, precision) -> None:
+    """Add one group's full moment (seen ``mask`` (N,), ``M`` (s, s)) to ``total`` (N, N) in place.
+
+    Given ``precision = P = C^{-1}`` (for groups with few unseen components),
+    ``G = -P_UU^{-1} P_UA`` and ``C_{U|A} = P_UU^{-1}`` (partitioned inverse) cost O(u s^2) instead
+    of an s x s solve."""
+    A, U = mask, ~mask
+    if precision is not None:
+        PUU = precision[np.ix_(U, U)]
+        G = -np.linalg.solve(PUU, precision[np.ix_(U, A)])
+        cond = np.linalg.inv(PUU)
+    else:
+        CUA = C[np.ix_(U, A)]
+        G = np.linalg.solve(C[np.ix_(A, A)], CUA.T).T
+        cond = C[np.ix_(U, U)] - G @ CUA.T
+    GM = G @ M
+    _add_square(total, np.flatnonzero(A), M)
+    total[np.ix_(U, A)] += GM
+    total[np.ix_(A, U)] += GM.T
+    total[np.ix_(U, U)] += GM @ G.T + count * cond
 
 
 def seen_diagonal(groups: list[MomentGroup], N: int) -> tuple[np.ndarray, np.ndarray]:
@@ -157,13 +344,102 @@ def _cap_premium(lam, q, cap, free_q):
     return lam * np.sqrt(c_lam)[:, None], q
 
 
+class _FactorInverse:
+    """``C^{-1}`` for ``C = L L' + diag(d)`` (L (N, m), d (N,) >= 0) without an N x N inverse.
+
+    Woodbury (Golub & Van Loan, Matrix Computations, 3rd ed. 1996, p. 51) through the Cholesky
+    factor of the m x m capacitance ``I + L' D^{-1} L`` is exact but divides by ``d_i``: for a row
+    with ``d_i`` far below ``||L_i||^2`` (a variance at its floor, a Heywood case) ``C^{-1}_ii`` is
+    a difference of two numbers ~``1/d_i`` and loses digits even when ``C`` is well conditioned.
+    Such rows (set S, the rest R) are eliminated exactly instead: with
+    ``F = (I + L_R' D_R^{-1} L_R)^{-1}``, the Schur complement of ``C_RR`` is
+    ``Z = D_S + L_S F L_S'`` (as ``C_SR = L_S L_R'``) and the partitioned inverse gives
+
+        C^{-1} = diag(dp) - U U' + V V',   dp = 1/d on R (0 on S),  U = [D_R^{-1} L_R R_K^{-1}; 0],
+        V = [-C_RR^{-1} L_R L_S'; I] R_Z^{-1},   C_RR^{-1} L_R = D_R^{-1} L_R F,
+
+    with ``R_K``, ``R_Z`` the upper Cholesky factors of the capacitance and of ``Z``.  Stored as
+    ``dp`` (N,), ``E = [U, V]`` (N, m + s) and signs ``sg`` (m + s,); ``logdet`` is
+    ``log det C = sum log d_R + log det(capacitance) + log det Z``: the matrix determinant lemma
+    ``det(D + L L') = det D det(I + L' D^{-1} L)`` and ``det C = det C_RR det Z``, both the block
+    (Schur complement) determinant formula.
+    Cost O(N m^2 + N s (m + s) + s^3); with every row in S this is the dense Cholesky inverse.
+    """
+
+    def __init__(self, L: np.ndarray, d: np.ndarray):
+        N, m = L.shape
+        d = np.asarray(d, float)
+        rowsq = np.einsum("ij,ij->i", L, L)
+        S = (d <= 0) | (rowsq > RATIO_EXACT * d)
+        R = ~S
+        dR = d[R]
+        LR = L[R]
+        Lk = np.linalg.cholesky(np.eye(m) + (LR / dR[:, None]).T @ LR)   # capacitance = Lk Lk'
+        UR = linalg.solve_triangular(Lk, (LR / dR[:, None]).T, lower=True).T    # D^-1 L_R Lk^-T
+        self.dp = np.zeros(N)
+        self.dp[R] = 1.0 / dR
+        U = np.zeros((N, m))
+        U[R] = UR
+        s = int(S.sum())
+        V = np.zeros((N, s))
+        logdet_z = 0.0
+        if s:
+            LS = L[S]
+            P = linalg.solve_triangular(Lk, LS.T, lower=True).T            # L_S Lk^-T
+            Lz = np.linalg.cholesky(np.diag(d[S]) + P @ P.T)
+            YR = linalg.solve_triangular(Lk, UR.T, lower=True, trans="T").T   # C_RR^-1 L_R
+            V[S] = linalg.solve_triangular(Lz, np.eye(s), lower=True).T       # Lz^-T
+            V[R] = -linalg.solve_triangular(Lz, LS @ YR.T, lower=True).T
+            logdet_z = 2.0 * np.log(np.diag(Lz)).sum()
+        self.E = np.hstack([U, V])
+        self.sg = np.concatenate([-np.ones(m), np.ones(s)])
+        self.logdet = np.log(dR).sum() + 2.0 * np.log(np.diag(Lk)).sum() + logdet_z
+
+    def apply(self, X: np.ndarray) -> np.ndarray:
+        """``C^{-1} X`` for X (N, p): O(N p (m + s))."""
+        return self.dp[:, None] * X + self.E @ (self.sg[:, None] * (self.E.T @ X))
+
+    def diagonal(self) -> np.ndarray:
+        return self.dp + (self.E ** 2) @ self.sg
+
+    def trace(self) -> float:
+        return float(self.dp.sum() + (self.E ** 2).sum(axis=0) @ self.sg)
+
+
+def _score_blocks(total: np.ndarray, n: float, L: np.ndarray, d: np.ndarray):
+    """``G L`` (N, m) and ``diag(G)`` (N,) of ``G = dQ/dC = -0.5 (n C^{-1} - C^{-1} T C^{-1})`` for
+    ``C = L L' + diag(d)`` and T = ``total`` (N, N): O(N^2 (m + s)), no N x N inverse.
+
+    ``X = C^{-1} T`` is formed by the structured inverse; then ``C^{-1} T C^{-1} L = X (C^{-1} L)``
+    and ``diag(C^{-1} T C^{-1})_i = X_ii dp_i + sum_c sg_c E_ic (X E)_ic``."""
+    inv = _FactorInverse(L, d)
+    CiL = inv.apply(L)
+    X = inv.apply(total)
+    XE = X @ inv.E
+    quad = np.diag(X) * inv.dp + (inv.E * XE) @ inv.sg
+    return -0.5 * (n * CiL - X @ CiL), -0.5 * (n * inv.diagonal() - quad)
+
+
+def _h_parts(p: Params):
+    """``(B, psi)`` of a diagonal (B with no columns) or factor ``H``; None when H is full."""
+    if p.psi is None:
+        return None
+    return (np.zeros((p.n_assets, 0)) if p.B is None else p.B), p.psi
+
+
 def log_prior(p: Params, sigma_prior: PriorTerms, h_prior: PriorTerms) -> float:
-    """Log density (up to a constant) of the inverse-Wishart-type priors at ``p``."""
+    """Log density (up to a constant) of the inverse-Wishart-type priors at ``p``:
+    ``-0.5 weight (log det C + v tr C^{-1})`` for C = Sigma and C = H (structured when possible)."""
     out = 0.0
-    for prior, C in ((sigma_prior, p.Sigma), (h_prior, p.H)):
+    for prior, C, parts in ((sigma_prior, p.Sigma, (p.Lambda, p.q)), (h_prior, p.H, _h_parts(p))):
         if prior.weight > 0:
-            sign, logdet = np.linalg.slogdet(C)
-            out -= 0.5 * prior.weight * (logdet + prior.v * np.trace(np.linalg.inv(C)))
+            if parts is None:
+                sign, logdet = np.linalg.slogdet(C)
+                trace = np.trace(np.linalg.inv(C))
+            else:
+                inv = _FactorInverse(*parts)
+                logdet, trace = inv.logdet, inv.trace()
+            out -= 0.5 * prior.weight * (logdet + prior.v * trace)
     return out
 
 
@@ -171,23 +447,30 @@ def expected_complete_loglik_grad(est, p: Params, rs: ResolvedSpec, packer, sigm
                                   h_prior: PriorTerms) -> np.ndarray:
     """Score of the log-posterior at ``p`` by Fisher's identity: the gradient of the expected
     complete-data log-likelihood (plus log prior) in the packed parameters, moments from ``est``
-    taken at ``p`` itself (Louis 1982)."""
-    grads = []
+    taken at ``p`` itself (Louis 1982).
+
+    With ``G = dQ/dC`` the loadings need ``2 G L`` and the log variances ``d * diag(G)``: for the
+    factor structures these come from :func:`_score_blocks` in O(N^2 m); a full H needs all of G.
+    """
+    moments = []
     for groups, C, prior in ((est.w_groups, p.Sigma, sigma_prior), (est.e_groups, p.H, h_prior)):
         total, n = impute_sum(groups, C)
-        total = total + prior.weight * prior.v * np.eye(C.shape[0])
-        n = n + prior.weight
-        Ci = np.linalg.inv(C)
-        grads.append(-0.5 * (n * Ci - Ci @ total @ Ci))       # dQ/dC, symmetric
-    GS, GH = grads
-    parts = [(2.0 * GS @ p.Lambda)[packer.lam_free], (p.q * np.diag(GS))[packer.free_q]]
+        total[np.diag_indices_from(total)] += prior.weight * prior.v
+        moments.append((total, n + prior.weight))
+    GS_L, GS_diag = _score_blocks(*moments[0], p.Lambda, p.q)
+    parts = [(2.0 * GS_L)[packer.lam_free], (p.q * GS_diag)[packer.free_q]]
     if rs.structure == "full":
+        total, n = moments[1]
+        Ci = np.linalg.inv(p.H)
+        GH = -0.5 * (n * Ci - Ci @ total @ Ci)                 # dQ/dH, symmetric
         Cf = np.linalg.cholesky(p.H)
         dC = 2.0 * GH @ Cf
         dC[np.diag_indices_from(dC)] *= np.diag(Cf)          # log-diagonal parametrisation
         parts.append(dC[packer.tril])
     else:
+        B, psi = _h_parts(p)
+        GH_L, GH_diag = _score_blocks(*moments[1], B, psi)
         if rs.structure == "factor":
-            parts.append((2.0 * GH @ p.B)[packer.b_free])
-        parts.append((p.psi * np.diag(GH))[packer.free_psi])
+            parts.append((2.0 * GH_L)[packer.b_free])
+        parts.append((psi * GH_diag)[packer.free_psi])
     return np.concatenate(parts)
