@@ -36,7 +36,7 @@ import numpy as np
 FULL = {"compare": [(30, 600, "balanced"), (30, 600, "staircase"), (100, 600, "balanced"),
                     (100, 600, "staircase")],
         "scale": [(500, 1200, "balanced"), (200, 1200, "staircase")], "dfm_iters": (1, 21),
-        "time_budget": 240.0}
+        "time_budget": 600.0}
 QUICK = {"compare": [(6, 60, "balanced"), (6, 60, "staircase")],
          "scale": [(20, 120, "balanced")], "dfm_iters": (1, 2), "time_budget": 60.0}
 

@@ -96,6 +96,17 @@ def test_zero_premium_volatility_is_a_reported_boundary():
     assert "at zero" in res.message
 
 
+def test_unfinished_fit_at_a_boundary_keeps_its_stop_reason():
+    # Stopped early (max_iter) with the variance already at zero: the status says why it stopped,
+    # the message still names the boundary.
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    full = panel.fit(data, panel.ModelSpec(std_errors="never"))
+    res = panel.fit(data, panel.ModelSpec(std_errors="never", max_iter=full.n_iter - 1))
+    assert full.status == "boundary"
+    assert res.status == "max_iter" and not res.converged and "at zero" in res.message
+
+
 def test_premium_prior_keeps_the_premium_volatility_off_zero():
     rng = np.random.default_rng(9)
     data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")

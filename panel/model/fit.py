@@ -202,7 +202,8 @@ def _boundary_status(p, rs, floor, assets, status, message):
             notes.append(f"premium volatility at the upper bound for {names}")
     if not notes:
         return status, message
-    return "boundary", f"{message}; " + "; ".join(notes)
+    # "boundary" qualifies a converged fit; an unfinished one keeps saying why it stopped
+    return ("boundary" if status == "converged" else status), f"{message}; " + "; ".join(notes)
 
 
 def covariance_at(res: PanelFit, t: int, kind: str):
