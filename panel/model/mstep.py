@@ -268,12 +268,19 @@ def seen_diagonal(groups: list[MomentGroup], N: int) -> tuple[np.ndarray, np.nda
 
 
 def factor_analysis(S: np.ndarray, L: np.ndarray, psi: np.ndarray, free_psi: np.ndarray,
-                    floor: float, steps: int = FA_INNER_STEPS) -> tuple[np.ndarray, np.ndarray]:
-    """Rubin-Thayer EM steps for ``S ~ L L' + diag(psi)``; fixed ``psi`` entries stay put."""
+                    floor, steps: int = FA_INNER_STEPS) -> tuple[np.ndarray, np.ndarray]:
+    """Rubin-Thayer EM steps for ``S`` (N, N) ~ ``L L' + diag(psi)``, L (N, m), psi (N,); entries
+    with ``free_psi`` False stay put, free ones are bounded below by ``floor`` (scalar or (N,)).
+    Returns the canonical loadings (N, m) and psi (N,).
+
+    Each step needs ``beta = L' C^{-1}`` (m, N).  Plain Woodbury, ``(I + L' Psi^{-1} L)^{-1}
+    L' Psi^{-1}``, loses about log10(||L_i||^2 / psi_i) digits when fewer than m psi_i sit at the
+    floor (a Heywood case, ratio up to 1e9); :meth:`_FactorInverse.solve_loadings` then eliminates
+    those rows exactly.
+    """
     m = L.shape[1]
     for _ in range(steps):
-        Li = L / psi[:, None]                                    # Psi^{-1} L
-        beta = np.linalg.solve(np.eye(m) + L.T @ Li, Li.T)      # L' Sigma^{-1} (Woodbury)
+        beta = _FactorInverse(L, psi).solve_loadings().T
         bS = beta @ S
         Egg = np.eye(m) - beta @ L + bS @ beta.T
         L = np.linalg.solve(Egg, bS).T
@@ -376,6 +383,8 @@ class _FactorInverse:
         LR = L[R]
         Lk = np.linalg.cholesky(np.eye(m) + (LR / dR[:, None]).T @ LR)   # capacitance = Lk Lk'
         UR = linalg.solve_triangular(Lk, (LR / dR[:, None]).T, lower=True).T    # D^-1 L_R Lk^-T
+        self._YR = linalg.solve_triangular(Lk, UR.T, lower=True, trans="T").T  # C_RR^-1 L_R
+        self._L, self._d, self._S, self._Lk, self._Lz = L, d, S, Lk, None
         self.dp = np.zeros(N)
         self.dp[R] = 1.0 / dR
         U = np.zeros((N, m))
@@ -386,10 +395,9 @@ class _FactorInverse:
         if s:
             LS = L[S]
             P = linalg.solve_triangular(Lk, LS.T, lower=True).T            # L_S Lk^-T
-            Lz = np.linalg.cholesky(np.diag(d[S]) + P @ P.T)
-            YR = linalg.solve_triangular(Lk, UR.T, lower=True, trans="T").T   # C_RR^-1 L_R
+            self._Lz = Lz = np.linalg.cholesky(np.diag(d[S]) + P @ P.T)
             V[S] = linalg.solve_triangular(Lz, np.eye(s), lower=True).T       # Lz^-T
-            V[R] = -linalg.solve_triangular(Lz, LS @ YR.T, lower=True).T
+            V[R] = -linalg.solve_triangular(Lz, LS @ self._YR.T, lower=True).T
             logdet_z = 2.0 * np.log(np.diag(Lz)).sum()
         self.E = np.hstack([U, V])
         self.sg = np.concatenate([-np.ones(m), np.ones(s)])
@@ -398,6 +406,33 @@ class _FactorInverse:
     def apply(self, X: np.ndarray) -> np.ndarray:
         """``C^{-1} X`` for X (N, p): O(N p (m + s))."""
         return self.dp[:, None] * X + self.E @ (self.sg[:, None] * (self.E.T @ X))
+
+    def solve_loadings(self) -> np.ndarray:
+        """``C^{-1} L`` (N, m) by whichever exact route is better conditioned here.
+
+        Both lose digits like eps times a condition number: plain Woodbury ``D^{-1} L K^{-1}``
+        (K = the full capacitance ``I + L' D^{-1} L``) that of K, which is ~``||L_i||^2 / d_i`` when
+        fewer than m rows are tiny (they blow K up in some directions only); the elimination that
+        of ``Z``, which has an eigenvalue ~``d_i`` when more than m rows are (tiny rows with
+        nearly collinear loadings spoil both; a row-sorted QR would be needed).  Elimination, from the blocks of the partitioned inverse (not through
+        :meth:`apply`, whose ``D^{-1} L - D^{-1} L (I - F)`` cancels when F is small):
+        ``(C^{-1} L)_S = Z^{-1} L_S F`` and ``(C^{-1} L)_R = C_RR^{-1} L_R (I - L_S' (C^{-1} L)_S)``,
+        as ``L_R' C_RR^{-1} L_R = I - F``.  O(N m^2 + s^3)."""
+        L, S, d = self._L, self._S, self._d
+        out = np.empty(L.shape)
+        if self._Lz is None:                       # nothing eliminated: this is plain Woodbury
+            out[:] = self._YR
+            return out
+        if (d > 0).all():
+            Li = L / d[:, None]
+            K = np.eye(L.shape[1]) + L.T @ Li
+            if np.linalg.cond(K) <= np.linalg.cond(self._Lz) ** 2:
+                return linalg.cho_solve((np.linalg.cholesky(K), True), Li.T).T
+        LS = L[S]
+        LSF = linalg.cho_solve((self._Lk, True), LS.T).T                      # L_S F
+        out[S] = W = linalg.cho_solve((self._Lz, True), LSF)
+        out[~S] = self._YR - self._YR @ (LS.T @ W)
+        return out
 
     def diagonal(self) -> np.ndarray:
         return self.dp + (self.E ** 2) @ self.sg
