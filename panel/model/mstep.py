@@ -280,13 +280,25 @@ def factor_analysis(S: np.ndarray, L: np.ndarray, psi: np.ndarray, free_psi: np.
     """
     m = L.shape[1]
     for _ in range(steps):
-        beta = _FactorInverse(L, psi).solve_loadings().T
+        beta = _beta(L, psi)
         bS = beta @ S
         Egg = np.eye(m) - beta @ L + bS @ beta.T
         L = np.linalg.solve(Egg, bS).T
         new_psi = np.maximum(np.diag(S) - np.einsum("ij,ji->i", L, bS), floor)
         psi = np.where(free_psi, new_psi, psi)
     return canonical_loadings(L), psi
+
+
+def _beta(L: np.ndarray, psi: np.ndarray) -> np.ndarray:
+    """``beta = L' C^{-1}`` (m, N) for ``C = L L' + diag(psi)``.  Plain Woodbury where it is exact
+    to rounding — one factor (the capacitance is a scalar: a tiny psi_i makes it large, nothing
+    cancels) or no tiny psi — which is the common case and several times cheaper; otherwise
+    :meth:`_FactorInverse.solve_loadings`."""
+    if (psi > 0).all():
+        Li = L / psi[:, None]
+        if L.shape[1] == 1 or not (np.einsum("ij,ij->i", L, L) > RATIO_EXACT * psi).any():
+            return np.linalg.solve(np.eye(L.shape[1]) + L.T @ Li, Li.T)
+    return _FactorInverse(L, psi).solve_loadings().T
 
 
 def _target(total, n, prior: PriorTerms):
