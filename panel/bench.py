@@ -11,7 +11,7 @@ Every ratio compares two codes timed in the SAME worker process on the SAME simu
     different model (AR(1) idiosyncratic noise, no premium random walks), so indicative only.
     Its iterations are averaged over iterations 2-21 from its default start, as
     ``(t(21) - t(1)) / 20`` (which removes its set-up and final smoothing): its first iterations
-    are much cheaper than later ones (measured at N=100: ~0.03 s for the second, ~0.7 s from the
+    are much cheaper than later ones (measured at N=100: ~0.03 s for the second, 0.7-1 s from the
     fifth on, single-threaded), so a two-iteration sample would understate a fit's cost;
 (c) our full fit to convergence (``panel.fit``): time, E-steps, final log-likelihood.
 Scale rows (ours alone, each in its own subprocess for its own peak RSS): N=500, T=1200
