@@ -15,15 +15,19 @@ The cut-off grid (the dataset's dates from ``start`` to ``end``, every ``every``
 first) is cut into contiguous chains of ``chain`` cut-offs (grid positions ``0..chain-1``,
 ``chain..2*chain-1``, ...).  Within a chain each vintage starts from the parameters estimated at the
 previous cut-off (``parent_run`` = that run); the first vintage of a chain starts cold (the
-moment-based rule), and so does a vintage whose asset set differs from its predecessor's.  Chains are
-independent and run in parallel.  Chain boundaries depend on the grid only, never on the number of
-workers or on the scheduler, so a backfill stores the same vintages whether it runs in-process, on a
-local process pool or on a Dask cluster.  On resume, a vintage whose predecessor is already stored
-starts from that run's stored parameters: the float64 values an uninterrupted backfill passes on
-(in-session warm starts go through the same parameter table), so interrupting and resuming does not
-change the result.  ``warm_start=False`` starts every vintage cold.  The starting values a vintage used
-are recorded in its settings (``start``), which is all :func:`rebuild_vintage` needs to rebuild it
-exactly.
+moment-based rule).  A vintage whose asset set differs from its predecessor's (an asset entered or
+left) is still warm: incumbents keep the predecessor's parameters, entrants get the moment-based
+values computed on the vintage's data, assets that left are dropped (cross terms from the loadings;
+a full ``H`` starts block-diagonal); it starts cold only when it shares no asset with its
+predecessor or the spec resolves to another model at its asset count (see
+:mod:`panel.backfill_start`).  Chains are independent and run in parallel.  Chain boundaries
+depend on the grid only, never on the number of workers or on the scheduler, so a backfill stores
+the same vintages whether it runs in-process, on a local process pool or on a Dask cluster.  On
+resume, a vintage whose predecessor is already stored starts from that run's stored parameters: the
+float64 values an uninterrupted backfill passes on (in-session warm starts, merged ones included, go
+through the same parameter table), so interrupting and resuming does not change the result.
+``warm_start=False`` starts every vintage cold.  The starting values a vintage used are recorded in
+its settings (``start``), which is all :func:`rebuild_vintage` needs to rebuild it exactly.
 
 Only the coordinating process writes the store (DuckDB has one writer): workers receive the vintage's
 :class:`~panel.data.Panel`, the :class:`~panel.model.spec.ModelSpec` and the start parameters and
@@ -48,6 +52,7 @@ from panel.model.fit import fit
 from panel.model.params import Params
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec, SpecError
+from panel.backfill_start import start_for_vintage, start_from_parameters  # noqa: F401 (re-exported)
 from panel.backfill_pools import BackfillError, default_workers, open_pool  # noqa: F401 (re-exported)
 from panel.store import (Store, backfill_key, find_run, from_fit, get_run, load_panel, resolve_dataset,
                          run_environment, run_query, run_tables, write_run)
@@ -157,55 +162,6 @@ def settings_key(dataset_hash: str, spec: ModelSpec | None = None, window="expan
     settings = {"spec": (spec or ModelSpec()).to_dict(), "dataset_hash": dataset_hash,
                 "window": Window.parse(window).text}
     return backfill_key(dataset_hash, _json_ready(settings))
-
-
-# ---------------------------------------------------------------------------------------------
-# warm starts from a parameter table
-
-def start_from_parameters(parameters: pd.DataFrame, assets) -> Params | None:
-    """:class:`Params` from a run's ``parameters`` table (PanelFit columns) for the assets
-    ``assets`` in that order; None when the table does not hold exactly those assets.
-
-    Used for every warm start, in-session and on resume alike, so both give the same float64 values.
-    """
-    assets = tuple(assets)
-    if parameters is None or len(parameters) == 0:
-        return None
-    rows = parameters.assign(row=parameters["row"].fillna(""), col=parameters["col"].fillna(""))
-    pos = {a: i for i, a in enumerate(assets)}
-    N = len(assets)
-    groups = {name: frame for name, frame in rows.groupby("name", sort=False)}
-    idio = groups.get("idio_premium_var")
-    if idio is None or set(idio["row"]) != set(assets) or len(idio) != N:
-        return None
-
-    def vector(frame):
-        out = np.full(N, np.nan)
-        out[[pos[a] for a in frame["row"]]] = frame["value"].to_numpy(dtype=float)
-        return out
-
-    def matrix(frame, prefix):
-        if frame is None:
-            return None
-        cols = [int(str(c)[len(prefix):]) - 1 for c in frame["col"]]
-        out = np.zeros((N, max(cols) + 1))
-        out[[pos[a] for a in frame["row"]], cols] = frame["value"].to_numpy(dtype=float)
-        return out
-
-    Lambda = matrix(groups.get("loading"), "f")
-    Lambda = np.zeros((N, 0)) if Lambda is None else Lambda
-    cov = groups.get("return_cov")
-    if cov is None:
-        return None
-    H = np.zeros((N, N))
-    i = [pos[a] for a in cov["row"]]
-    j = [pos[a] for a in cov["col"]]
-    values = cov["value"].to_numpy(dtype=float)
-    H[i, j] = values
-    H[j, i] = values
-    psi = groups.get("return_idio_var")
-    return Params(Lambda=Lambda, q=vector(idio), H=H, B=matrix(groups.get("return_loading"), "g"),
-                  psi=None if psi is None else vector(psi))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -380,8 +336,8 @@ class _Chains:
         return [c for c in sorted(self.todo) if self.todo[c] and c not in self.busy]
 
     def start_of(self, store: Store, vintage: Vintage, data: Panel) -> tuple[Params | None, int | None]:
-        """(start parameters, parent run) of ``vintage``: its chain predecessor's parameters, or
-        (None, None) for a cold start."""
+        """(start parameters, parent run) of ``vintage``: its chain predecessor's parameters (merged
+        with cold values for entrants, :func:`start_for_vintage`), or (None, None) for a cold start."""
         if not self.plan.warm_start or vintage.position % self.plan.chain == 0:
             return None, None
         last = self.last.get(vintage.chain)
@@ -392,7 +348,7 @@ class _Chains:
             if before.stored is None:
                 return None, None
             run_id, table = before.stored, run_tables(store, before.stored)["parameters"]
-        params = start_from_parameters(table, data.assets)
+        params = start_for_vintage(table, data, self.plan.spec)
         return (params, run_id) if params is not None else (None, None)
 
 

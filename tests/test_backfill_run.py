@@ -170,7 +170,9 @@ def test_without_warm_starts_every_vintage_starts_cold(sleeves_store):
     assert all(s["start"] is None for s in runs["settings"])
 
 
-def test_an_asset_entering_breaks_the_warm_start_chain(tmp_path):
+def test_an_asset_entering_keeps_the_warm_start_chain(tmp_path):
+    # The entry vintage warm-starts from a merge (incumbents from the predecessor, the entrant
+    # from the moment-based rule); tests/test_backfill_entrants.py checks the merge itself.
     panel = quillmoor_panel(late_sleeve="estuary_infra", enters_at=68)   # first data 2023-09-30
     with open_store(tmp_path / "late.duckdb") as store:
         write_dataset(store, panel, NAME)
@@ -179,8 +181,9 @@ def test_an_asset_entering_breaks_the_warm_start_chain(tmp_path):
     as_of = list(pd.to_datetime(runs["as_of"]))
     entry = as_of.index(pd.Timestamp("2023-09-30"))
     parents = [not pd.isna(p) for p in runs["parent_run"]]
-    assert parents == [False, True, False, True, True, True] and entry == 2
-    assert runs.loc[entry, "settings"]["start"] is None
+    assert parents == [False, True, True, True, True, True] and entry == 2
+    start = runs.loc[entry, "settings"]["start"]
+    assert start is not None and len(start["q"]) == len(runs.loc[entry - 1, "settings"]["start"]["q"]) + 1
 
 
 def test_a_failing_fit_stops_the_backfill_and_keeps_what_is_stored(sleeves_store, monkeypatch):

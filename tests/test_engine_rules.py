@@ -107,6 +107,28 @@ def test_unfinished_fit_at_a_boundary_keeps_its_stop_reason():
     assert res.status == "max_iter" and not res.converged and "at zero" in res.message
 
 
+def test_inadmissible_quasi_newton_trial_point_is_backed_off(monkeypatch):
+    # A trial point whose covariance is not numerically positive definite (LinAlgError in the
+    # score) must make the line search back off, not crash the fit.
+    import panel.model.mstep as ms
+
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    ref = panel.fit(data, panel.ModelSpec(std_errors="never"))
+    real, calls = ms.expected_complete_loglik_grad, {"n": 0}
+
+    def flaky(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise np.linalg.LinAlgError("Matrix is not positive definite")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(ms, "expected_complete_loglik_grad", flaky)
+    res = panel.fit(data, panel.ModelSpec(std_errors="never"))
+    assert calls["n"] > 3
+    assert res.loglik == pytest.approx(ref.loglik, rel=1e-9)
+
+
 def test_premium_prior_keeps_the_premium_volatility_off_zero():
     rng = np.random.default_rng(9)
     data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")

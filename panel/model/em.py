@@ -189,14 +189,20 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
             raise _OutOfTime("max_iter")
         if time_left is not None and elapsed() - t_start > time_left:
             raise _OutOfTime("time_budget")
-        pp = packer.unpack(to_theta(x), p)
-        ee = estep(pp)
-        oo = objective(ee, pp)
         count["n"] += 1
+        try:
+            pp = packer.unpack(to_theta(x), p)
+            ee = estep(pp)
+            oo = objective(ee, pp)
+            grad = score(ee, pp)
+        except (np.linalg.LinAlgError, FloatingPointError):
+            # a trial point whose covariance is not numerically positive definite (a log-Cholesky
+            # diagonal far below its floor): worse than anything seen, so the line search backs off
+            return -best["obj"] / scale + 1.0, np.zeros_like(x)
         if oo > best["obj"]:
             best.update(p=pp, e=ee, obj=oo)
             trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
-        return -oo / scale, -score(ee, pp) * dtheta_dx(x) / scale
+        return -oo / scale, -grad * dtheta_dx(x) / scale
 
     xbounds = []
     for j, (lo, hi) in enumerate(bounds if bounds is not None else [(None, None)] * theta0.size):
@@ -217,8 +223,12 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
                                          "maxcor": 20})
         if res.success:
             status, message = "converged", f"converged after {count['n']} E-steps (quasi-Newton finish)"
-        else:
+        elif res.status == 1:       # L-BFGS-B ran out of function evaluations
             status, message = "max_iter", f"quasi-Newton finish stopped: {res.message}"
+        else:                       # e.g. its line search found no increase: not a budget stop
+            status = "stalled"
+            message = (f"quasi-Newton finish stopped after {count['n']} E-steps without meeting "
+                       f"its tolerance ({res.message.strip(': ')}); result kept at the best point")
     except _OutOfTime as stop:
         status = str(stop)
         message = (f"stopped after {count['n']} E-steps without meeting the tolerance"

@@ -75,6 +75,13 @@ class _Problem:
                                                 self.sigma_prior, self.h_prior)
 
 
+def default_start(data, spec: ModelSpec | None = None) -> tuple[Params, str]:
+    """The moment-based starting values :func:`fit` uses when no ``start`` is given, and the H
+    structure the spec resolves to for ``data`` (Panel or DataFrame)."""
+    prob = _Problem(_as_panel(data), spec or ModelSpec())
+    return starting_values(prob.Y, prob.rs), prob.rs.structure
+
+
 def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
         progress=None) -> PanelFit:
     """Fit the premium panel by EM.
