@@ -27,8 +27,8 @@ from panel.model.params import Packer, Params
 NOISE = 1e-11
 #: EM relative progress per step below which the quasi-Newton finish takes over.  EM's slow
 #: directions are the ill-conditioned ones; L-BFGS-B started while EM still moves builds its
-#: curvature on them sooner (measured on the benchmark panels: 1e-5 took 2-3x the E-steps of 1e-4
-#: to reach the same optimum).
+#: curvature on them sooner (measured on the benchmark panels: 1e-5 took 1.3-2.2x the E-steps of
+#: 1e-4 to reach the same optimum; 1e-3 once ended in a worse local optimum).
 HANDOVER = 1e-4
 
 
