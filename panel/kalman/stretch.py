@@ -77,8 +77,10 @@ def simultaneous_diagonalisation(S: np.ndarray, H: np.ndarray, h_parts=None):
     the thin SVD of b); otherwise, or when some ``psi_i`` is tiny against ``H_ii`` (see
     ``WELL_SPREAD``), the Cholesky factor of H does it in O(n^3).  One symmetric eigenproblem.
     """
-    if h_parts is not None and h_parts[0].shape[1] and np.min(h_parts[1] / np.diag(H)) < WELL_SPREAD:
-        h_parts = None              # a near-Heywood psi: R^{-1} b is huge and G cancels digits
+    if h_parts is not None and (np.min(h_parts[1]) <= 0 or (
+            h_parts[0].shape[1] and np.min(h_parts[1] / np.diag(H)) < WELL_SPREAD)):
+        h_parts = None              # a near-Heywood psi: R^{-1} b is huge and G cancels digits;
+                                    # psi <= 0: let the Cholesky route say H is not definite
     if h_parts is None:
         Lc = linalg.cholesky(H, lower=True, check_finite=False)
         X = linalg.solve_triangular(Lc, S, lower=True, check_finite=False)
