@@ -129,6 +129,26 @@ def test_inadmissible_quasi_newton_trial_point_is_backed_off(monkeypatch):
     assert res.loglik == pytest.approx(ref.loglik, rel=1e-9)
 
 
+@pytest.mark.parametrize("code,status", [(1, "max_iter"), (2, "stalled")])
+def test_quasi_newton_stop_reason_maps_to_status(monkeypatch, code, status):
+    # L-BFGS-B's own stop codes: 1 = out of evaluations (a budget stop), 2 = e.g. its line search
+    # found no increase (scipy.optimize docs) — the latter is not a budget stop.
+    from scipy import optimize
+
+    real = optimize.minimize
+
+    def stopped(fun, x0, **kwargs):
+        res = real(fun, x0, **{**kwargs, "options": {**kwargs["options"], "maxfun": 3}})
+        res.success, res.status, res.message = False, code, "ABNORMAL: " if code == 2 else "STOP"
+        return res
+
+    monkeypatch.setattr(optimize, "minimize", stopped)
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    res = panel.fit(data, panel.ModelSpec(std_errors="never"))
+    assert res.status == status and not res.converged
+
+
 def test_premium_prior_keeps_the_premium_volatility_off_zero():
     rng = np.random.default_rng(9)
     data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
