@@ -45,13 +45,15 @@ class EMOutcome:
 
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
-           bounds=None, extrapolate: bool = True, progress=None) -> EMOutcome:
+           bounds=None, extrapolate: bool = True, project=None, progress=None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
     ``score(e, p) -> (n_theta,)`` enables the quasi-Newton finish, within ``bounds`` (a list of
     (low, high) per packed parameter), which also clip SQUAREM's extrapolation;
-    ``extrapolate=False`` turns SQUAREM off.  ``max_iter`` bounds the number of E-steps.
+    ``extrapolate=False`` turns SQUAREM off; ``project(p) -> Params`` maps an extrapolated point
+    onto a constraint that is not a box (the M-step's own projection), so SQUAREM can run there
+    too.  ``max_iter`` bounds the number of E-steps.
     ``progress(n_estep, objective)`` is called after every accepted step.
     """
     accelerate = accelerate and extrapolate
@@ -104,6 +106,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
                         if lo is not None:
                             te = np.clip(te, lo, hi)
                         pe = packer.unpack(te, p2)
+                        if project is not None:
+                            pe = project(pe)
                         ee = estep(pe)
                         oe = objective(ee, pe)
                     except (np.linalg.LinAlgError, ValueError, FloatingPointError):

@@ -133,10 +133,9 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
 def _quasi_newton_setup(prob: _Problem, floor: np.ndarray) -> dict:
     """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
     finish) and the score.  With factors and a premium-volatility cap the bound is not a box:
-    then plain EM only, whose M-step enforces it."""
+    then no quasi-Newton finish, and SQUAREM's extrapolated points are projected onto it by the
+    M-step's own rule (its safeguard keeps the objective monotone)."""
     rs = prob.rs
-    if rs.max_sigma_diag is not None and rs.k > 0:
-        return {"extrapolate": False}
     logvar = prob.packer.log_variance_mask()
     n_lam = int(prob.packer.lam_free.sum())
     n_q = int(prob.packer.free_q.sum())
@@ -153,6 +152,14 @@ def _quasi_newton_setup(prob: _Problem, floor: np.ndarray) -> dict:
         high[q_slice] = np.log(rs.max_sigma_diag)
     bounds = [(None if not np.isfinite(lo) else lo, None if not np.isfinite(hi) else hi)
               for lo, hi in zip(low, high)]
+
+    if rs.max_sigma_diag is not None and rs.k > 0:
+        free_q = prob.packer.free_q
+
+        def project(p):
+            lam, q = ms.cap_premium(p.Lambda, p.q, rs.max_sigma_diag, free_q)
+            return Params(Lambda=lam, q=q, H=p.H, B=p.B, psi=p.psi)
+        return {"bounds": bounds, "project": project}
 
     def score(e, p):
         return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)

@@ -326,7 +326,7 @@ def mstep(est, p: Params, rs: ResolvedSpec, floor: float, sigma_prior: PriorTerm
         S = _target(total, n, sigma_prior)
         lam, q = factor_analysis(S, np.array(p.Lambda), np.where(free_q, p.q, q_fixed), free_q, floor)
     if rs.max_sigma_diag is not None:
-        lam, q = _cap_premium(lam, q, rs.max_sigma_diag, free_q)
+        lam, q = cap_premium(lam, q, rs.max_sigma_diag, free_q)
     # --- return shocks
     free_psi = np.ones(N, bool) if rs.fixed_psi is None else np.isnan(rs.fixed_psi)
     psi_fixed = np.zeros(N) if rs.fixed_psi is None else np.nan_to_num(np.asarray(rs.fixed_psi))
@@ -343,7 +343,7 @@ def mstep(est, p: Params, rs: ResolvedSpec, floor: float, sigma_prior: PriorTerm
     return Params.build(lam, q, "factor", B=B, psi=psi)
 
 
-def _cap_premium(lam, q, cap, free_q):
+def cap_premium(lam, q, cap, free_q):
     """Scale an asset's premium innovation down to the bound ``Sigma_ii <= cap``.
 
     Free own variances are scaled with the loadings; a fixed own variance stays and only the

@@ -88,7 +88,10 @@ class ModelSpec:
         premium innovation volatility sqrt(q_i ppy)) or ``premium_vol:ASSET``; ``return_vol`` (the
         return-shock volatility sqrt(psi_i ppy); diagonal or factor H) or ``return_vol:ASSET``.
     max_premium_vol : float or None
-        Upper bound on each asset's total premium innovation volatility sqrt(Sigma_ii ppy).
+        Upper bound on each asset's total premium innovation volatility sqrt(Sigma_ii ppy).  With
+        premium factors the bound is not a box in the parameters: such fits run EM with SQUAREM
+        (extrapolations projected onto the bound) and no quasi-Newton finish, so they converge
+        slowly; prefer a premium prior where it does the job.
     premium_prior, return_prior : Prior or None
         MAP-EM priors on ``Sigma`` and ``H``.
     initial_premium : InitialPremium or None
