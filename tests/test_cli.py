@@ -150,7 +150,10 @@ def test_show_human_lists_parameters_annualised(cli_store):
     shown = _json(cli_store.invoke("show", "1", "--json"))
     alder = np.sqrt(np.array(shown["return_cov"])[0, 0] * 12) * 100
     assert f"{alder:.1f}" in done.stdout
-    assert "sqrt(variance x 12)" in done.stdout and CAUTION in done.stdout
+    # DESIGN.md section 5: premium volatility sqrt(q x ppy^3), return volatility sqrt(h x ppy)
+    own = np.sqrt(np.array(shown["premium_cov"])[0, 0] * 12 ** 3) * 100
+    assert f"{own:.2f}" in done.stdout
+    assert "sqrt(q x 12^3)" in done.stdout and "sqrt(h x 12)" in done.stdout and CAUTION in done.stdout
 
 
 def test_estimates_filters_assets_and_dates_and_annualises(cli_store):

@@ -33,7 +33,7 @@ def test_console_script_end_to_end(tmp_path):
     fitted = json.loads(_run("fit", "--data", "sleeves", *CLI_FIT_OPTIONS, "--json", store=store).stdout)
     assert fitted["run_id"] == 1 and fitted["converged"] is True
     human = _run("--quiet", "show", "1", store=store)
-    assert "Parameters, annualised %" in human.stdout and CAUTION in human.stdout
+    assert "Parameters, % a year" in human.stdout and CAUTION in human.stdout
     assert human.stderr == ""
     info = json.loads(_run("store", "info", "--json", store=store).stdout)
     assert info["counts"]["runs"] == 1

@@ -30,7 +30,8 @@ OPTIONAL_MODULES = (
 HELP = f"""Pooled risk-premium estimates for many assets, with a versioned store of vintages.
 
 Premia in tables are annualised percent ({ANNUALISING}); --json, --csv and export keep
-per-period decimals.  Volatility options are annualised percent (--fix premium_vol=2 is 2% a year).
+per-period decimals.  Volatility options are percent a year: --fix own_premium_vol=1 lets each
+asset's own premium move about 1 point a year; --fix return_vol=15 is a 15% return-shock volatility.
 Exit codes: 0 success, 1 a problem with the input (one line on stderr), 2 bad usage.
 """
 

@@ -8,7 +8,6 @@ when a dataset has several.
 
 from __future__ import annotations
 
-import dataclasses
 from enum import Enum
 from typing import Annotated
 
@@ -17,7 +16,7 @@ import typer
 from panel.cli import output
 from panel.cli.common import (CsvFlag, JsonFlag, State, info, parse_date, progress_enabled, state,
                               store_for, user_errors)
-from panel.cli.fitting import Shocks, model_spec
+from panel.cli.model_options import ModelOptions, with_model_options
 
 # ---------------------------------------------------------------------------------------------
 # options shared by the three commands
@@ -31,47 +30,6 @@ WindowOpt = Annotated[str | None, typer.Option(
 KeyOpt = Annotated[str | None, typer.Option(
     "--key", metavar="PREFIX", help="The backfill to use, by (a prefix of) its key, when the dataset has "
                                     "several (instead of repeating its settings).", show_default=False)]
-PremiumFactorsOpt = Annotated[int | None, typer.Option(
-    "--premium-factors", help="Common premium factors k (0 = independent local levels); default 1 with "
-                              "3+ assets.", show_default=False)]
-ReturnShocksOpt = Annotated[Shocks | None, typer.Option(
-    "--return-shocks", help="Structure of the return-shock covariance; default factor.", show_default=False)]
-ReturnFactorsOpt = Annotated[int, typer.Option("--return-factors", help="Return factors r for "
-                                               "--return-shocks factor.")]
-VolScaleOpt = Annotated[str, typer.Option(
-    "--vol-scale", metavar="none|ewma:HALFLIFE",
-    help="Ex-ante volatility scale of the return shocks: an EWMA of past squared returns with this "
-         "half-life in periods.")]
-FixOpt = Annotated[list[str] | None, typer.Option(
-    "--fix", metavar="NAME=VALUE", help="Hold a volatility fixed, annualised %: premium_vol=2, "
-                                        "return_vol=15, or premium_vol:ASSET=1.5. Repeatable.",
-    show_default=False)]
-MaxPremiumVolOpt = Annotated[float | None, typer.Option(
-    "--max-premium-vol", metavar="PCT", help="Upper bound on each premium's innovation volatility, "
-                                             "annualised %.", show_default=False)]
-PremiumPriorOpt = Annotated[str | None, typer.Option(
-    "--premium-prior", metavar="VOL:WEIGHT", help="Prior on the premium innovations: volatility "
-                                                  "(annualised %) worth WEIGHT pseudo-periods.",
-    show_default=False)]
-InitialPremiumOpt = Annotated[str | None, typer.Option(
-    "--initial-premium", metavar="MEAN:VOL", help="Prior for each premium at its first observation, "
-                                                  "annualised % (default: diffuse).", show_default=False)]
-MaxIterOpt = Annotated[int | None, typer.Option("--max-iter", min=1, help="Most EM iterations per "
-                                                "vintage (default 5000).", show_default=False)]
-TimeBudgetOpt = Annotated[float | None, typer.Option(
-    "--time-budget", metavar="SECONDS", help="Stop each vintage's estimation after this long.",
-    show_default=False)]
-
-
-class StdErrors(str, Enum):
-    auto = "auto"
-    always = "always"
-    never = "never"
-
-
-StdErrorsOpt = Annotated[StdErrors | None, typer.Option(
-    "--std-errors", help="Parameter standard errors for each vintage (auto: when the free parameters "
-                         "number at most 150). Default auto.", show_default=False)]
 
 
 class SeKind(str, Enum):
@@ -79,31 +37,15 @@ class SeKind(str, Enum):
     newey_west = "newey-west"
 
 
-def _spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol, premium_prior,
-          initial_premium, max_iter, time_budget, std_errors):
-    spec = model_spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
-                      premium_prior, initial_premium, max_iter, time_budget)
-    if std_errors is not None:
-        spec = dataclasses.replace(spec, std_errors=std_errors.value)
-    return spec
-
-
-def _settings_given(window, premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
-                    premium_prior, initial_premium, max_iter, time_budget, std_errors) -> bool:
-    optional = (window, premium_factors, return_shocks, fix, max_premium_vol, premium_prior, initial_premium,
-                max_iter, time_budget, std_errors)
-    return any(v not in (None, []) for v in optional) or return_factors != 1 or \
-        (vol_scale or "none").strip().lower() != "none"
-
-
-def _chosen_backfill(store, data: str, key: str | None, window, settings: tuple, given: bool):
+def _chosen_backfill(store, data: str, key: str | None, window, model: ModelOptions):
     """The backfill meant by --key, by the model options, or the dataset's only one."""
     from panel.backfill import find_backfill
 
+    given = model.given() or window is not None
     if key and given:
         raise typer.BadParameter("give either --key or the backfill's settings, not both", param_hint="--key")
     if given:
-        return find_backfill(store, data, spec=_spec(*settings), window=window or "expanding")
+        return find_backfill(store, data, spec=model.spec(), window=window or "expanding")
     return find_backfill(store, data, key=key)
 
 
@@ -193,17 +135,7 @@ def backfill(
                                                   show_default=False)] = None,
     label: Annotated[str | None, typer.Option("--label", help="A note stored with every vintage.",
                                               show_default=False)] = None,
-    premium_factors: PremiumFactorsOpt = None,
-    return_shocks: ReturnShocksOpt = None,
-    return_factors: ReturnFactorsOpt = 1,
-    vol_scale: VolScaleOpt = "none",
-    fix: FixOpt = None,
-    max_premium_vol: MaxPremiumVolOpt = None,
-    premium_prior: PremiumPriorOpt = None,
-    initial_premium: InitialPremiumOpt = None,
-    max_iter: MaxIterOpt = None,
-    time_budget: TimeBudgetOpt = None,
-    std_errors: StdErrorsOpt = None,
+    model: ModelOptions = ModelOptions(),
     as_json: JsonFlag = False,
 ) -> None:
     """Re-estimate the model at each past cut-off and store one vintage per cut-off.
@@ -219,8 +151,7 @@ def backfill(
     st = state(ctx)
     parse_date(start, "--start")
     parse_date(end, "--end")
-    spec = _spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
-                 premium_prior, initial_premium, max_iter, time_budget, std_errors)
+    spec = model.spec()
     if workers is None and scheduler is None:
         workers = default_workers()
     interrupted = False
@@ -290,17 +221,7 @@ def revisions(
                                       "followed across vintages, YYYY-MM-DD.", show_default=False)],
     key: KeyOpt = None,
     window: WindowOpt = None,
-    premium_factors: PremiumFactorsOpt = None,
-    return_shocks: ReturnShocksOpt = None,
-    return_factors: ReturnFactorsOpt = 1,
-    vol_scale: VolScaleOpt = "none",
-    fix: FixOpt = None,
-    max_premium_vol: MaxPremiumVolOpt = None,
-    premium_prior: PremiumPriorOpt = None,
-    initial_premium: InitialPremiumOpt = None,
-    max_iter: MaxIterOpt = None,
-    time_budget: TimeBudgetOpt = None,
-    std_errors: StdErrorsOpt = None,
+    model: ModelOptions = ModelOptions(),
     as_json: JsonFlag = False,
     as_csv: CsvFlag = False,
 ) -> None:
@@ -315,11 +236,8 @@ def revisions(
 
     st = state(ctx)
     day = parse_date(date, "--date")
-    settings = (premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol, premium_prior,
-                initial_premium, max_iter, time_budget, std_errors)
-    given = _settings_given(window, *settings)
     with store_for(st) as store, user_errors():
-        chosen = _chosen_backfill(store, data, key, window, settings, given)
+        chosen = _chosen_backfill(store, data, key, window, model)
         found = revision_path(store, chosen, asset, day)
         ppy = _ppy(store, chosen)
     if as_csv:
@@ -371,17 +289,7 @@ def evaluate(
                                        "Driscoll-Kraay).")] = SeKind.plain,
     lags: Annotated[int | None, typer.Option("--lags", min=0, help="Newey-West lags (default "
                                              "floor(4 (n/100)^(2/9))).", show_default=False)] = None,
-    premium_factors: PremiumFactorsOpt = None,
-    return_shocks: ReturnShocksOpt = None,
-    return_factors: ReturnFactorsOpt = 1,
-    vol_scale: VolScaleOpt = "none",
-    fix: FixOpt = None,
-    max_premium_vol: MaxPremiumVolOpt = None,
-    premium_prior: PremiumPriorOpt = None,
-    initial_premium: InitialPremiumOpt = None,
-    max_iter: MaxIterOpt = None,
-    time_budget: TimeBudgetOpt = None,
-    std_errors: StdErrorsOpt = None,
+    model: ModelOptions = ModelOptions(),
     as_json: JsonFlag = False,
     as_csv: CsvFlag = False,
 ) -> None:
@@ -395,13 +303,10 @@ def evaluate(
     from panel.evaluation import evaluate_backfill
 
     st = state(ctx)
-    settings = (premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol, premium_prior,
-                initial_premium, max_iter, time_budget, std_errors)
-    given = _settings_given(window, *settings)
     if lags is not None and se is SeKind.plain:
         raise typer.BadParameter("--lags goes with --se newey-west", param_hint="--lags")
     with store_for(st) as store, user_errors():
-        chosen = _chosen_backfill(store, data, key, window, settings, given)
+        chosen = _chosen_backfill(store, data, key, window, model)
         result = evaluate_backfill(store, chosen, se=se.value, lags=lags)
         ppy = _ppy(store, chosen)
     table = result.table
@@ -449,6 +354,6 @@ def _period(ppy: int) -> str:
 
 
 def register(app: typer.Typer) -> None:
-    app.command("backfill")(backfill)
-    app.command("revisions")(revisions)
-    app.command("evaluate")(evaluate)
+    app.command("backfill")(with_model_options(backfill))
+    app.command("revisions")(with_model_options(revisions))
+    app.command("evaluate")(with_model_options(evaluate))

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-from enum import Enum
 from pathlib import Path
 from typing import Annotated
 
@@ -10,49 +9,10 @@ import pandas as pd
 import typer
 
 from panel.cli import output
-from panel.cli.common import (JsonFlag, RunArg, State, fail, info, parse_assignments, parse_date,
-                              parse_number, parse_pair, progress, state, store_exists, store_for,
-                              user_errors)
+from panel.cli.common import (JsonFlag, RunArg, State, fail, info, parse_date, progress, state,
+                              store_exists, store_for, user_errors)
+from panel.cli.model_options import ModelOptions, with_model_options
 from panel.cli.data import DateColOpt, LayoutOpt, MinObsOpt, UnitsOpt, ingest_options, read_file
-
-
-class Shocks(str, Enum):
-    diagonal = "diagonal"
-    factor = "factor"
-    full = "full"
-
-
-def model_spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
-               premium_prior, initial_premium, max_iter, time_budget):
-    """A :class:`ModelSpec` from CLI values; volatilities given in annualised percent become the
-    spec's annualised decimals."""
-    from panel.model.spec import InitialPremium, ModelSpec, Prior, VolScale
-
-    fixed = {}
-    for name, value in parse_assignments(fix, "--fix").items():
-        fixed[name] = parse_number(value, "--fix", name) / 100.0
-    scale = None
-    text = (vol_scale or "none").strip().lower()
-    if text != "none":
-        kind, sep, half = text.partition(":")
-        if kind != "ewma" or not sep:
-            raise typer.BadParameter(f"{vol_scale!r} is not 'none' or 'ewma:HALFLIFE'",
-                                     param_hint="--vol-scale")
-        scale = VolScale("ewma", half_life=parse_number(half, "--vol-scale", "half-life"))
-    prior = None
-    if premium_prior is not None:
-        vol, weight = parse_pair(premium_prior, "--premium-prior", "vol", "weight")
-        prior = Prior(vol=vol / 100.0, weight=weight)
-    start = None
-    if initial_premium is not None:
-        mean, vol = parse_pair(initial_premium, "--initial-premium", "mean", "vol")
-        start = InitialPremium(mean=mean / 100.0, vol=vol / 100.0)
-    extra = {} if max_iter is None else {"max_iter": max_iter}
-    return ModelSpec(premium_factors=premium_factors,
-                     return_shocks=None if return_shocks is None else return_shocks.value,
-                     return_factors=return_factors, vol_scale=scale, fixed=fixed,
-                     max_premium_vol=None if max_premium_vol is None else max_premium_vol / 100.0,
-                     premium_prior=prior, initial_premium=start, time_budget=time_budget, **extra)
 
 
 def _vintage(panel, as_of: pd.Timestamp | None, what: str):
@@ -117,33 +77,7 @@ def fit(
     min_obs: MinObsOpt = 24,
     as_of: Annotated[str | None, typer.Option("--as-of", help="Data cut-off YYYY-MM-DD (a vintage); "
                                               "default: all data.", show_default=False)] = None,
-    premium_factors: Annotated[int | None, typer.Option("--premium-factors", help="Common premium factors "
-                               "k (0 = independent local levels); default 1 with 3+ assets.",
-                               show_default=False)] = None,
-    return_shocks: Annotated[Shocks | None, typer.Option("--return-shocks", help="Structure of the "
-                             "return-shock covariance; default factor.", show_default=False)] = None,
-    return_factors: Annotated[int, typer.Option("--return-factors", help="Return factors r for "
-                              "--return-shocks factor.")] = 1,
-    vol_scale: Annotated[str, typer.Option("--vol-scale", metavar="none|ewma:HALFLIFE",
-                         help="Ex-ante volatility scale of the return shocks: an EWMA of past squared "
-                              "returns with this half-life in periods.")] = "none",
-    fix: Annotated[list[str] | None, typer.Option("--fix", metavar="NAME=VALUE",
-                   help="Hold a volatility fixed, annualised %: premium_vol=2, return_vol=15, or per "
-                        "asset premium_vol:ASSET=1.5. Repeatable.", show_default=False)] = None,
-    max_premium_vol: Annotated[float | None, typer.Option("--max-premium-vol", metavar="PCT",
-                               help="Upper bound on each premium's innovation volatility, annualised %.",
-                               show_default=False)] = None,
-    premium_prior: Annotated[str | None, typer.Option("--premium-prior", metavar="VOL:WEIGHT",
-                             help="Prior on the premium innovations: volatility (annualised %) worth "
-                                  "WEIGHT pseudo-periods, e.g. 1:120.", show_default=False)] = None,
-    initial_premium: Annotated[str | None, typer.Option("--initial-premium", metavar="MEAN:VOL",
-                               help="Prior for each premium at its first observation, annualised %, "
-                                    "e.g. 4:10 (default: diffuse).", show_default=False)] = None,
-    max_iter: Annotated[int | None, typer.Option("--max-iter", help="Most EM iterations (default 5000).",
-                                                 show_default=False)] = None,
-    time_budget: Annotated[float | None, typer.Option("--time-budget", metavar="SECONDS",
-                           help="Stop the estimation after this long (status time_budget).",
-                           show_default=False)] = None,
+    model: ModelOptions = ModelOptions(),
     label: Annotated[str | None, typer.Option("--label", help="A note stored with the run.",
                                               show_default=False)] = None,
     as_json: JsonFlag = False,
@@ -164,8 +98,7 @@ def fit(
         raise typer.BadParameter("--name goes with --file (it names the dataset the file becomes)",
                                  param_hint="--name")
     cutoff = parse_date(as_of, "--as-of")
-    spec = model_spec(premium_factors, return_shocks, return_factors, vol_scale, fix, max_premium_vol,
-                      premium_prior, initial_premium, max_iter, time_budget)
+    spec = model.spec()
     if file is not None:
         panel = read_file(file, ingest_options(layout, units, date_col, min_obs))
         dataset = (name or file.stem).strip()
@@ -294,5 +227,5 @@ def reproduce(
 
 
 def register(app: typer.Typer) -> None:
-    app.command("fit")(fit)
+    app.command("fit")(with_model_options(fit))
     app.command("reproduce")(reproduce)

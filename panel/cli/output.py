@@ -3,9 +3,11 @@
 Conventions every command follows:
 
 - Human output (rich tables) shows premia **annualised, in percent**: a per-period premium and its
-  standard deviation times ``periods_per_year`` (the premium is a level), a per-period variance as a
-  volatility ``sqrt(variance x periods_per_year)``.  Tables say so in their titles and state the
-  basis (filtered = real-time, smoothed = revised; the as-of date).
+  standard deviation times ``periods_per_year`` (the premium is a level); a return-shock variance
+  ``h`` as the volatility ``sqrt(h x periods_per_year)``; a premium innovation variance ``q`` as the
+  premium volatility ``sqrt(q x periods_per_year^3)`` (how far the annualised premium moves in a
+  year; :mod:`panel.units`).  Tables say so in their titles and state the basis (filtered =
+  real-time, smoothed = revised; the as-of date).
 - Machine output (``--json``, ``--csv``, ``export``) keeps the store's **per-period decimal** units
   and column names, and says so (``"units"``, ``"periods_per_year"``); JSON carries a ``"caution"``
   key instead of the caution line.
@@ -28,11 +30,12 @@ from rich.markup import escape
 from rich.table import Table
 from rich.text import Text
 
+from panel import units
+
 CAUTION = ("Caution: statistical estimates with model risk, not investment advice; "
            "follow your firm's model-risk governance.")
 #: How numbers are annualised for display (stated in help texts and table captions).
-ANNUALISING = ("annualised: premium and its std x periods a year; volatility = "
-               "sqrt(variance x periods a year)")
+ANNUALISING = ("annualised: premium and its std x periods a year; " + units.CONVENTION_NOTE)
 MACHINE_UNITS = "per-period decimal (multiply premia by periods_per_year to annualise)"
 #: 90% two-sided normal quantile (bands are mean +- Z90 std).
 Z90 = 1.6448536269514722
@@ -158,12 +161,17 @@ def facts(pairs) -> None:
 
 def premium_pct(value, ppy: int):
     """Per-period premium (or its std) -> annualised percent."""
-    return np.asarray(value, dtype=float) * ppy * 100.0
+    return units.annual_premium(value, ppy) * 100.0
 
 
 def vol_pct(variance, ppy: int):
-    """Per-period variance -> annualised volatility in percent."""
-    return np.sqrt(np.maximum(np.asarray(variance, dtype=float), 0.0) * ppy) * 100.0
+    """Per-period return-shock variance -> annualised volatility in percent."""
+    return units.return_vol(variance, ppy) * 100.0
+
+
+def premium_vol_pct(variance, ppy: int):
+    """Per-period premium innovation variance -> premium volatility, percent a year (units module)."""
+    return units.premium_vol(variance, ppy) * 100.0
 
 
 def num(value, digits: int = 2) -> str:

@@ -8,10 +8,10 @@ from enum import Enum
 from pathlib import Path
 from typing import Annotated
 
-import numpy as np
 import pandas as pd
 import typer
 
+from panel import units
 from panel.cli import output
 from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, existing_folder, fail,
                               parse_date, state, store_for, user_errors)
@@ -43,7 +43,7 @@ def _structure(params) -> str:
     return "diagonal" if params.psi is not None else "full"
 
 
-def _spec_lines(spec, settings: dict, params) -> list[tuple[str, str]]:
+def _spec_lines(spec, settings: dict, params, ppy: int) -> list[tuple[str, str]]:
     k = params.Lambda.shape[1]
     lines = [("premium factors", f"{k}" + (" (independent local levels)" if k == 0 else "")),
              ("return shocks", _structure(params))]
@@ -51,12 +51,19 @@ def _spec_lines(spec, settings: dict, params) -> list[tuple[str, str]]:
         vs = spec.vol_scale
         lines.append(("vol scale", f"ewma, half-life {vs.half_life:g} periods" if vs.kind == "ewma"
                       else f"{vs.kind} series"))
+    def premium_vol(value):  # settings stored in the legacy convention are shown in today's
+        shown = units.convert_premium_vol(value, ppy, spec.premium_vol_convention)
+        note = "" if spec.premium_vol_convention == units.YEARLY_CHANGE else \
+            f" (stored as {100 * value:g} in the legacy sqrt(q x ppy) convention)"
+        return f"{100 * shown:.4g}% a year{note}"
+
     for key, value in spec.fixed:
-        lines.append((f"fixed {key}", f"{100 * value:g}% a year"))
+        lines.append((f"fixed {key}", premium_vol(value) if key.startswith("own_premium_vol")
+                      else f"{100 * value:g}% a year"))
     if spec.max_premium_vol is not None:
-        lines.append(("max premium vol", f"{100 * spec.max_premium_vol:g}% a year"))
+        lines.append(("max premium vol", premium_vol(spec.max_premium_vol)))
     if spec.premium_prior is not None:
-        lines.append(("premium prior", f"{100 * spec.premium_prior.vol:g}% a year, weight "
+        lines.append(("premium prior", f"{premium_vol(spec.premium_prior.vol)}, weight "
                       f"{spec.premium_prior.weight:g} periods"))
     if spec.return_prior is not None:
         lines.append(("return prior", f"{100 * spec.return_prior.vol:g}% a year, weight "
@@ -141,19 +148,20 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     ])
     if st.verbose:
         output.facts([(k, run.get(k)) for k in ENV_FIELDS])
-    output.facts(_spec_lines(inputs.spec, settings, params))
+    output.facts(_spec_lines(inputs.spec, settings, params, ppy))
     pvalues = {r.asset: r.pvalue for r in diag.itertuples(index=False) if r.statistic == "ljung_box"}
     k = params.Lambda.shape[1]
     rows = []
     for i, asset in enumerate(assets):
-        loadings = [output.num(params.Lambda[i, j] * np.sqrt(ppy) * 100, 2) for j in range(k)]
-        rows.append((asset, *loadings, output.num(output.vol_pct(params.q[i], ppy)),
-                     output.num(output.vol_pct(params.Sigma[i, i], ppy)),
+        loadings = [output.num(units.premium_loading(params.Lambda[i, j], ppy) * 100, 2) for j in range(k)]
+        rows.append((asset, *loadings, output.num(output.premium_vol_pct(params.q[i], ppy)),
+                     output.num(output.premium_vol_pct(params.Sigma[i, i], ppy)),
                      output.num(output.vol_pct(params.H[i, i], ppy), 1), output.num(pvalues.get(asset), 3)))
     headers = ["asset", *[f"loading f{j + 1}" for j in range(k)], "own premium vol", "premium vol",
                "return-shock vol", "Ljung-Box p"]
-    output.show(output.table(f"Parameters, annualised % a year (volatility = sqrt(variance x {ppy}); "
-                             f"loadings x sqrt({ppy}))", headers, rows))
+    output.show(output.table(f"Parameters, % a year (premium vol = sqrt(q x {ppy}^3), loadings x {ppy}^1.5; "
+                             f"return-shock vol = sqrt(h x {ppy}))", headers, rows,
+                             caption=units.CONVENTION_NOTE))
     est = tables["estimates"]
     last = est[pd.to_datetime(est["date"]) == pd.Timestamp(run["as_of"])].set_index("asset")
     rows = [(a, output.num(output.premium_pct(last.loc[a, "filtered_mean"], ppy), 1),
@@ -283,11 +291,11 @@ def _param_summary(frame: pd.DataFrame, side: str, ppy: int) -> dict[str, dict]:
             continue
         entry = out.setdefault(r.row, {})
         if r.name == "loading":
-            entry[f"loading {r.col}"] = value * np.sqrt(ppy) * 100
+            entry[f"loading {r.col}"] = float(units.premium_loading(value, ppy)) * 100
         elif r.name == "idio_premium_var":
-            entry["own premium vol"] = float(output.vol_pct(value, ppy))
+            entry["own premium vol"] = float(output.premium_vol_pct(value, ppy))
         elif r.name == "premium_cov" and r.row == r.col:
-            entry["premium vol"] = float(output.vol_pct(value, ppy))
+            entry["premium vol"] = float(output.premium_vol_pct(value, ppy))
         elif r.name == "return_cov" and r.row == r.col:
             entry["return-shock vol"] = float(output.vol_pct(value, ppy))
     return out
@@ -388,8 +396,8 @@ def diff(ctx: typer.Context,
             cells += [output.num(summary[0].get(a, {}).get(key)), output.num(summary[1].get(a, {}).get(key))]
         rows.append(cells)
     headers = ["asset"] + [f"{key} {side}" for key in keys for side in ("A", "B")]
-    output.show(output.table(f"Parameters, annualised % (A = run {run_a}, B = run {run_b}; all raw values: "
-                             "--json or --csv)", headers, rows))
+    output.show(output.table(f"Parameters, % a year (A = run {run_a}, B = run {run_b}; all raw values: "
+                             "--json or --csv)", headers, rows, caption=units.CONVENTION_NOTE))
     output.caution()
 
 

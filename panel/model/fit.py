@@ -10,6 +10,7 @@ import time
 import numpy as np
 import pandas as pd
 
+from panel import units
 from panel.data import Panel
 from panel.kalman import paths
 from panel.model import inference, mstep as ms
@@ -17,10 +18,13 @@ from panel.model.em import run_em
 from panel.model.params import Packer, Params, count_free
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec, ResolvedSpec, SpecError
-from panel.model.start import starting_values, volatility_scale
+from panel.model.start import perturbed_start, starting_values, volatility_scale
 
 #: Free parameters above which ``std_errors="auto"`` skips the observed information.
 AUTO_SE_LIMIT = 150
+#: Multi-start fits whose objectives differ by less than this (log-likelihood units) reached the same
+#: optimum (common practice: differences below 0.01 are immaterial for inference).
+SAME_OPTIMUM = 0.01
 
 
 def _as_panel(data) -> Panel:
@@ -50,15 +54,15 @@ class _Problem:
         ip = spec.initial_premium
         self.init = None if ip is None else (ip.mean / ppy, (ip.vol / ppy) ** 2)
         self.packer = Packer(self.rs, N)
-        self.sigma_prior = self._prior(spec.premium_prior)
-        self.h_prior = self._prior(spec.return_prior)
+        self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
+        self.h_prior = self._prior(spec.return_prior, units.return_variance)
         self.n_obs = int((~np.isnan(self.Y)).sum())
         self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
 
-    def _prior(self, prior):
+    def _prior(self, prior, to_variance):
         if prior is None:
             return ms.PriorTerms()
-        return ms.PriorTerms(weight=prior.weight, v=prior.vol ** 2 / self.rs.ppy)
+        return ms.PriorTerms(weight=prior.weight, v=to_variance(prior.vol, self.rs.ppy))
 
     def estep(self, p: Params):
         parts = None
@@ -98,36 +102,76 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     spec = spec or ModelSpec()
     prob = _Problem(panel, spec)
     rs = prob.rs
-    p0 = starting_values(prob.Y, rs) if start is None else _check_start(start, prob)
-    floor = ms.VAR_FLOOR * np.diag(p0.H)   # per asset: a variance here is a boundary solution
     n_free = count_free(rs, prob.Y.shape[1])
+    _check_estimable(prob, n_free)
+    p0 = starting_values(prob.Y, rs) if start is None else _check_start(start, prob)
+    if rs.max_sigma_diag is not None:      # start inside the cap: EM never accepts a step down
+        lam, q = ms.cap_premium(p0.Lambda, p0.q, rs.max_sigma_diag, prob.packer.free_q)
+        p0 = Params(Lambda=lam, q=q, H=p0.H, B=p0.B, psi=p0.psi)
+    floor = ms.VAR_FLOOR * np.diag(p0.H)   # per asset: a variance here is a boundary solution
     if n_free == 0:
         e = prob.estep(p0)
-        outcome = None
         p, status, message, n_iter = p0, "fixed", "all parameters fixed: filter and smoother only", 1
         objective, trace = prob.objective(e, p0), ((1, prob.objective(e, p0), e.loglik, 0.0, "fixed"),)
         loglik = e.loglik
     else:
-        outcome = run_em(
-            p0, prob.estep,
-            lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
-            prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
-            max_iter=spec.max_iter, time_budget=spec.time_budget,
-            accelerate=spec.acceleration != "none", progress=progress,
-            **_quasi_newton_setup(prob, floor))
+        outcomes = [_estimate(prob, p0, floor, progress)]
+        for j in range(1, spec.starts):
+            outcomes.append(_estimate(prob, perturbed_start(p0, rs, j, rs.max_sigma_diag), floor, progress))
+        outcome = max(outcomes, key=lambda o: o.objective)   # the first of equals: the default start
         p, status, message, n_iter = outcome.params, outcome.status, outcome.message, outcome.n_estep
         objective, trace, loglik = outcome.objective, outcome.trace, outcome.estep.loglik
+        if spec.starts > 1:
+            reached = sum(o.objective >= objective - SAME_OPTIMUM for o in outcomes)
+            message += (f"; best of {spec.starts} starts, {reached} reached it (within {SAME_OPTIMUM:g} "
+                        f"log-likelihood units), {sum(o.n_estep for o in outcomes)} E-steps in all")
         status, message = _boundary_status(p, rs, floor, panel.assets, status, message)
     se, se_note = None, ""
     want_se = spec.std_errors == "always" or (spec.std_errors == "auto" and n_free <= AUTO_SE_LIMIT)
     if n_free and want_se:
-        se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure)
+        q_bound, psi_bound, _ = _at_bounds(p, rs, floor)
+        se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure,
+                                                at_bound=prob.packer.packed_variances(q_bound, psi_bound))
     elif n_free and spec.std_errors == "auto":
         se_note = f"standard errors skipped ({n_free} free parameters > {AUTO_SE_LIMIT}; std_errors='always' forces them)"
     if se_note:
         message = f"{message}; {se_note}"
     return _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se,
                    time.perf_counter() - t0)
+
+
+def _estimate(prob: _Problem, p0: Params, floor: np.ndarray, progress):
+    """One EM run (with its accelerations) from ``p0``."""
+    spec, rs = prob.spec, prob.rs
+    return run_em(
+        p0, prob.estep,
+        lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
+        prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
+        max_iter=spec.max_iter, time_budget=spec.time_budget,
+        accelerate=spec.acceleration != "none", progress=progress,
+        **_quasi_newton_setup(prob, floor))
+
+
+def _check_estimable(prob: _Problem, n_free: int) -> None:
+    """Refuse, with one line, data on which the likelihood has no proper maximum."""
+    Y, assets, rs = prob.Y, prob.panel.assets, prob.rs
+    T, N = Y.shape
+    if T < 2:
+        raise SpecError(f"the panel has {T} date; estimation needs at least 2 (several years are advisable)")
+    with np.errstate(invalid="ignore"):
+        spread = np.nanmax(Y, axis=0) - np.nanmin(Y, axis=0)
+    counts = (~np.isnan(Y)).sum(axis=0)
+    flat = (spread == 0) & (counts >= 2)
+    if flat.any():
+        names = ", ".join(np.array(assets)[flat][:5])
+        raise SpecError(f"constant returns for {names}: a premium model needs returns that vary; drop them")
+    informative = int(counts.sum()) - N     # an asset's first return only places its diffuse level
+    if n_free > informative:
+        raise SpecError(f"{n_free} free parameters but only {informative} returns after each asset's first; "
+                        "use fewer factors, a simpler return_shocks, fixed volatilities or more data")
+    if rs.structure == "full" and T - 1 <= N:
+        raise SpecError(f"return_shocks='full' with {N} assets needs more than {N + 1} dates (has {T}): "
+                        "its likelihood is unbounded; use return_shocks='factor' or 'diagonal'")
 
 
 def _quasi_newton_setup(prob: _Problem, floor: np.ndarray) -> dict:
@@ -194,26 +238,35 @@ def _check_start(p: Params, prob: _Problem) -> Params:
     return p
 
 
-def _boundary_status(p, rs, floor, assets, status, message):
-    notes = []
+def _at_bounds(p, rs, floor):
+    """(N,) masks of free own premium variances at zero, free own return variances at their floor
+    (Heywood cases), and total premium variances at the cap."""
     free_q = np.ones(p.n_assets, bool) if rs.fixed_q is None else np.isnan(rs.fixed_q)
     at_zero = free_q & (p.q <= ms.BOUNDARY_RATIO * np.diag(p.H))
-    if at_zero.any():
-        names = ", ".join(np.array(assets)[at_zero][:5])
-        notes.append(f"own premium innovation variance at zero (boundary) for {names}; "
-                     "a premium prior or a fixed premium_vol keeps it away")
+    heywood = np.zeros(p.n_assets, bool)
     if p.psi is not None:
         free_psi = np.ones(p.n_assets, bool) if rs.fixed_psi is None else np.isnan(rs.fixed_psi)
         heywood = free_psi & (p.psi <= floor * 1.0001)
-        if heywood.any():
-            names = ", ".join(np.array(assets)[heywood][:5])
-            notes.append(f"own return-shock variance at zero (boundary) for {names}; "
-                         "use fewer return factors or return_shocks='full'")
+    capped = np.zeros(p.n_assets, bool)
     if rs.max_sigma_diag is not None:
         capped = np.diag(p.Sigma) >= rs.max_sigma_diag * (1 - 1e-8)
-        if capped.any():
-            names = ", ".join(np.array(assets)[capped][:5])
-            notes.append(f"premium volatility at the upper bound for {names}")
+    return at_zero, heywood, capped
+
+
+def _boundary_status(p, rs, floor, assets, status, message):
+    at_zero, heywood, capped = _at_bounds(p, rs, floor)
+    notes = []
+    if at_zero.any():
+        names = ", ".join(np.array(assets)[at_zero][:5])
+        notes.append(f"own premium innovation variance at zero (boundary) for {names}; "
+                     "a premium prior or a fixed own_premium_vol keeps it away")
+    if heywood.any():
+        names = ", ".join(np.array(assets)[heywood][:5])
+        notes.append(f"own return-shock variance at zero (boundary) for {names}; "
+                     "use fewer return factors or return_shocks='full'")
+    if capped.any():
+        names = ", ".join(np.array(assets)[capped][:5])
+        notes.append(f"premium volatility at the upper bound for {names}")
     if not notes:
         return status, message
     # "boundary" qualifies a converged fit; an unfinished one keeps saying why it stopped

@@ -14,12 +14,18 @@ from scipy import stats
 from panel.model.params import Packer, Params
 
 
-def observed_information(theta: np.ndarray, score, rel_step: float = 1e-4) -> np.ndarray:
-    """``-d score / d theta`` by central differences; ``score(theta) -> (p,)``."""
+def _steps(theta: np.ndarray, scale: np.ndarray, rel_step: float) -> np.ndarray:
+    """Differencing steps relative to each parameter's own size (its value or its natural scale):
+    an absolute step would be as large as a small loading itself."""
+    return rel_step * np.maximum(np.abs(theta), scale)
+
+
+def observed_information(theta: np.ndarray, score, scale: np.ndarray, rel_step: float = 1e-4) -> np.ndarray:
+    """``-d score / d theta`` by central differences; ``score(theta) -> (p,)``, ``scale`` (p,) the
+    natural size of each entry (:meth:`Packer.step_scale`)."""
     p = theta.size
     info = np.empty((p, p))
-    for j in range(p):
-        h = rel_step * max(1.0, abs(theta[j]))
+    for j, h in enumerate(_steps(theta, scale, rel_step)):
         up, dn = theta.copy(), theta.copy()
         up[j] += h
         dn[j] -= h
@@ -27,12 +33,12 @@ def observed_information(theta: np.ndarray, score, rel_step: float = 1e-4) -> np
     return 0.5 * (info + info.T)
 
 
-def delta_std_errors(theta: np.ndarray, cov_theta: np.ndarray, reported, rel_step: float = 1e-6):
+def delta_std_errors(theta: np.ndarray, cov_theta: np.ndarray, reported, scale: np.ndarray,
+                     rel_step: float = 1e-6):
     """Standard errors of ``reported(theta) -> (m,)`` by the delta method (numerical Jacobian)."""
     base = reported(theta)
     J = np.empty((base.size, theta.size))
-    for j in range(theta.size):
-        h = rel_step * max(1.0, abs(theta[j]))
+    for j, h in enumerate(_steps(theta, scale, rel_step)):
         up, dn = theta.copy(), theta.copy()
         up[j] += h
         dn[j] -= h
@@ -67,18 +73,51 @@ def parameter_rows(assets, k: int, r: int, structure: str) -> list[tuple[str, st
     return rows
 
 
-def standard_errors(p: Params, packer: Packer, score, structure: str):
-    """(reported SEs or None, message).  ``score(theta)`` evaluates the Fisher-identity score."""
+def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=None):
+    """(reported SEs or None, message).  ``score(theta)`` evaluates the Fisher-identity score.
+
+    ``at_bound`` (packed mask) marks parameters sitting at a bound: the usual asymptotics do not
+    hold there, so they are held fixed (zero variance) for the others' information and their own
+    reported rows get no standard error (NaN)."""
     theta = packer.pack(p)
-    info = observed_information(theta, score)
+    scale = packer.step_scale(p)
+    inner = np.ones(theta.size, bool) if at_bound is None else ~np.asarray(at_bound, bool)
+    if not inner.any():
+        return None, "every free parameter is at a bound: no standard errors"
+
+    def inner_score(sub):
+        full = theta.copy()
+        full[inner] = sub
+        return score(full)[inner]
+
+    info = observed_information(theta[inner], inner_score, scale[inner])
     try:
-        cov = np.linalg.inv(info)
+        cov_inner = np.linalg.inv(info)
     except np.linalg.LinAlgError:
         return None, "observed information is singular: no standard errors"
-    if not np.all(np.diag(cov) > 0):
+    if not np.all(np.diag(cov_inner) > 0):
         return None, "observed information is not positive definite (boundary or flat direction): no standard errors"
-    se = delta_std_errors(theta, cov, lambda th: parameter_vector(packer.unpack(th, p), structure))
+    cov = np.zeros((theta.size, theta.size))
+    cov[np.ix_(inner, inner)] = cov_inner
+    reported = lambda th: parameter_vector(packer.unpack(th, p), structure)  # noqa: E731
+    se = delta_std_errors(theta, cov, reported, scale)
+    if not inner.all():
+        # a reported entry that moves with a bound parameter alone is itself at the bound
+        touched = _moves_with(theta, reported, ~inner, scale)
+        se[touched & (se == 0)] = np.nan
+        return se, "no standard errors for parameters at a bound"
     return se, ""
+
+
+def _moves_with(theta, reported, mask, scale, rel_step: float = 1e-6) -> np.ndarray:
+    """Reported entries that change when the packed entries in ``mask`` change."""
+    base = reported(theta)
+    moved = np.zeros(base.size, bool)
+    for j in np.flatnonzero(mask):
+        up = theta.copy()
+        up[j] += rel_step * max(abs(theta[j]), scale[j])
+        moved |= reported(up) != base
+    return moved
 
 
 def ljung_box(z: np.ndarray, lags: int | None = None) -> tuple[float, int, float]:

@@ -458,7 +458,13 @@ def _score_blocks(total: np.ndarray, n: float, L: np.ndarray, d: np.ndarray):
     ``C = L L' + diag(d)`` and T = ``total`` (N, N): O(N^2 (m + s)), no N x N inverse.
 
     ``X = C^{-1} T`` is formed by the structured inverse; then ``C^{-1} T C^{-1} L = X (C^{-1} L)``
-    and ``diag(C^{-1} T C^{-1})_i = X_ii dp_i + sum_c sg_c E_ic (X E)_ic``."""
+    and ``diag(C^{-1} T C^{-1})_i = X_ii dp_i + sum_c sg_c E_ic (X E)_ic``.
+
+    With no factors C is diagonal: ``diag(G)_i = -0.5 (n / d_i - T_ii / d_i^2)``, and a row with
+    ``d_i = 0`` (a variance fixed at zero: a constant premium) has no score."""
+    if L.shape[1] == 0:
+        inv = np.divide(1.0, d, out=np.zeros(d.size), where=d > 0)
+        return np.zeros((d.size, 0)), -0.5 * (n * inv - np.diag(total) * inv ** 2)
     inv = _FactorInverse(L, d)
     CiL = inv.apply(L)
     X = inv.apply(total)

@@ -118,6 +118,34 @@ class Packer:
             parts.append(np.full(int(self.free_psi.sum()), 2.0))
         return np.concatenate(parts)
 
+    def step_scale(self, p: Params) -> np.ndarray:
+        """Per packed entry, the size of a unit change: 1 for log entries (already relative), the
+        row's standard deviation for raw loadings and Cholesky entries (``sqrt(Sigma_ii)`` for premium
+        loadings, ``sqrt(H_ii)`` for return ones), so differencing steps scale with each parameter."""
+        sd_sigma, sd_h = np.sqrt(np.diag(p.Sigma)), np.sqrt(np.diag(p.H))
+        rows_lam = np.nonzero(self.lam_free)[0]
+        parts = [sd_sigma[rows_lam], np.ones(int(self.free_q.sum()))]
+        if self.rs.structure == "full":
+            rows, cols = self.tril
+            parts.append(np.where(rows == cols, 1.0, sd_h[rows]))
+        else:
+            if self.rs.structure == "factor":
+                parts.append(sd_h[np.nonzero(self.b_free)[0]])
+            parts.append(np.ones(int(self.free_psi.sum())))
+        return np.concatenate(parts)
+
+    def packed_variances(self, q_mask: np.ndarray, psi_mask: np.ndarray) -> np.ndarray:
+        """Packed-entry mask of the free own premium variances in ``q_mask`` and the free own
+        return variances in ``psi_mask`` (both (N,) over assets)."""
+        parts = [np.zeros(int(self.lam_free.sum()), bool), q_mask[self.free_q]]
+        if self.rs.structure == "full":
+            parts.append(np.zeros(len(self.tril[0]), bool))
+        else:
+            if self.rs.structure == "factor":
+                parts.append(np.zeros(int(self.b_free.sum()), bool))
+            parts.append(psi_mask[self.free_psi])
+        return np.concatenate(parts)
+
     def log_variance_mask(self) -> np.ndarray:
         """Which packed entries are log variances (for full H: log Cholesky diagonals)."""
         return self.log_power() > 0

@@ -8,8 +8,11 @@ Notation (used everywhere in riskprem)::
     H     = diag(psi) | B B' + diag(psi) | full                          (return-shock structure)
 
 ``y_t`` are excess returns in decimal per period.  User-facing volatilities in a spec are
-**annualised decimals** (0.20 = 20% a year: a per-period variance ``v`` is ``v * ppy`` a year);
-internally everything is per period.
+**annualised decimals** in the conventions of :mod:`panel.units`: a return volatility of 0.20 is a
+per-period variance ``h = 0.20^2 / ppy``; a premium volatility of 0.01 means the annualised premium
+moves by 1 point (1 sd) over a year, a per-period innovation variance ``q = 0.01^2 / ppy^3``
+(``premium_vol_convention``; runs stored before it existed used ``q = V^2 / ppy``).  Internally
+everything is per period.
 """
 
 from __future__ import annotations
@@ -17,8 +20,12 @@ from __future__ import annotations
 import math
 from dataclasses import asdict, dataclass, field, fields
 
+from panel import units
+
 RETURN_SHOCKS = ("diagonal", "factor", "full")
-FIXABLE = ("premium_vol", "return_vol")
+FIXABLE = ("own_premium_vol", "return_vol")
+#: Accepted spellings of fixable names (normalised to the first form when the spec is built).
+FIX_ALIASES = {"premium_vol": "own_premium_vol"}
 
 
 class SpecError(ValueError):
@@ -29,8 +36,10 @@ class SpecError(ValueError):
 class Prior:
     """Weakly-informative inverse-Wishart prior on a covariance, as pseudo-observations.
 
-    ``weight`` pseudo-periods whose covariance is ``(vol**2 / ppy) * I``: the M-step target becomes
-    ``(n S + weight v I) / (n + weight)``.  ``vol`` is annualised, decimal.
+    ``weight`` pseudo-periods whose covariance is ``v * I``: the M-step target becomes
+    ``(n S + weight v I) / (n + weight)``.  ``vol`` is annualised, decimal, in the convention of
+    what it is a prior on: ``v = units.premium_variance(vol, ppy)`` for the premium innovations
+    (0.01: the premium moves about a point a year), ``v = vol^2 / ppy`` for return shocks.
     """
 
     vol: float
@@ -64,7 +73,14 @@ class VolScale:
 
 
 def _freeze(mapping) -> tuple[tuple[str, float], ...]:
-    return tuple(sorted((str(k), float(v)) for k, v in dict(mapping or {}).items()))
+    out = {}
+    for key, value in dict(mapping or {}).items():
+        name, sep, asset = str(key).partition(":")
+        canonical = FIX_ALIASES.get(name, name) + sep + asset
+        if canonical in out:
+            raise SpecError(f"fixed {canonical!r} is given twice (as {key!r} too); give it once")
+        out[canonical] = float(value)
+    return tuple(sorted(out.items()))
 
 
 @dataclass(frozen=True)
@@ -84,11 +100,13 @@ class ModelSpec:
         None -> the panel's.
     vol_scale : VolScale or None
     fixed : mapping
-        Parameters held fixed, annualised decimal volatilities: ``premium_vol`` (every asset's own
-        premium innovation volatility sqrt(q_i ppy)) or ``premium_vol:ASSET``; ``return_vol`` (the
-        return-shock volatility sqrt(psi_i ppy); diagonal or factor H) or ``return_vol:ASSET``.
+        Parameters held fixed, annualised decimal volatilities: ``own_premium_vol`` (every asset's
+        OWN premium volatility, the local level ``a_t``'s part ``q_i``; with k = 0 that is the whole
+        premium; 0 makes it constant apart from the common factors) or ``own_premium_vol:ASSET``
+        (``premium_vol`` is accepted for ``own_premium_vol``); ``return_vol`` (the own return-shock
+        volatility sqrt(psi_i ppy); diagonal or factor H) or ``return_vol:ASSET``.
     max_premium_vol : float or None
-        Upper bound on each asset's total premium innovation volatility sqrt(Sigma_ii ppy).  With
+        Upper bound on each asset's TOTAL premium volatility (common and own parts, ``Sigma_ii``).  With
         premium factors the bound is not a box in the parameters: such fits run EM with SQUAREM
         (extrapolations projected onto the bound) and no quasi-Newton finish, so they converge
         slowly; prefer a premium prior where it does the job.
@@ -111,6 +129,13 @@ class ModelSpec:
         slows down; "squarem": EM with SQUAREM only; "none": plain EM.
     std_errors : {"auto", "always", "never"}
         "auto" computes them when the free parameters number at most 150.
+    premium_vol_convention : {"yearly-change", "sqrt-ppy"}
+        How premium volatilities in this spec map to per-period variances (:mod:`panel.units`).
+        New specs use "yearly-change"; :meth:`from_dict` reads settings without the key (runs stored
+        before it existed) as "sqrt-ppy", so they reproduce exactly.
+    starts : int
+        Fits from this many starting points (the moment-based rule and ``starts - 1`` deterministic
+        perturbations of it); the best optimum is kept and the result says how many reached it.
     method : {"auto", "dense", "stretch", "balanced"}
         E-step path (:mod:`panel.kalman.paths`): "dense" is the reference; "stretch" decouples the
         panel's final balanced stretch exactly; "balanced" is "stretch" for fully balanced panels
@@ -134,9 +159,15 @@ class ModelSpec:
     acceleration: str = "quasi-newton"
     std_errors: str = "auto"
     method: str = "auto"
+    premium_vol_convention: str = units.YEARLY_CHANGE
+    starts: int = 1
 
     def __post_init__(self):
         object.__setattr__(self, "fixed", _freeze(self.fixed))
+
+    def premium_variance(self, vol: float, ppy: int) -> float:
+        """Per-period premium innovation variance of a premium volatility in this spec's convention."""
+        return units.premium_variance(vol, ppy, self.premium_vol_convention)
 
     # ---- serialisation (the store records to_dict(); reproduce rebuilds with from_dict) ----
     def to_dict(self) -> dict:
@@ -150,6 +181,8 @@ class ModelSpec:
         unknown = set(data) - {f.name for f in fields(cls)}
         if unknown:
             raise SpecError(f"unknown model settings {sorted(unknown)}; remove them")
+        # Settings stored before the convention was recorded used the legacy one.
+        data.setdefault("premium_vol_convention", units.LEGACY)
         for key, kind in (("premium_prior", Prior), ("return_prior", Prior),
                           ("initial_premium", InitialPremium), ("vol_scale", VolScale)):
             if data.get(key) is not None and not isinstance(data[key], kind):
@@ -188,7 +221,10 @@ class ModelSpec:
         ppy = int(self.periods_per_year or ppy_panel)
         if ppy < 1:
             raise SpecError(f"periods_per_year must be a positive integer, got {ppy}")
-        fixed_q, fixed_psi = _per_asset_fixes(self.fixed, assets, ppy)
+        if self.premium_vol_convention not in units.CONVENTIONS:
+            raise SpecError(f"premium_vol_convention must be one of {', '.join(units.CONVENTIONS)}, "
+                            f"got {self.premium_vol_convention!r}")
+        fixed_q, fixed_psi = _per_asset_fixes(self.fixed, assets, ppy, self.premium_variance)
         if fixed_psi is not None and structure == "full":
             raise SpecError("return_vol can be fixed only with return_shocks='diagonal' or 'factor'")
         for name, value in (("max_premium_vol", self.max_premium_vol),):
@@ -212,11 +248,22 @@ class ModelSpec:
             raise SpecError(f"acceleration must be quasi-newton, squarem or none, got {self.acceleration!r}")
         if self.std_errors not in ("auto", "always", "never"):
             raise SpecError(f"std_errors must be auto, always or never, got {self.std_errors!r}")
+        if not (isinstance(self.starts, int) and 1 <= self.starts <= 100):
+            raise SpecError(f"starts must be a whole number from 1 to 100, got {self.starts!r}")
         if self.max_iter < 1 or not self.tol > 0:
             raise SpecError("max_iter must be >= 1 and tol > 0")
-        bound = None if self.max_premium_vol is None else self.max_premium_vol ** 2 / ppy
+        zeros = 0 if fixed_q is None else sum(v == 0 for v in fixed_q)
+        if zeros and k and zeros > k:
+            raise SpecError(f"own_premium_vol is fixed at 0 for {zeros} assets but there are only {k} common "
+                            "premium factor(s), so their premia would move only along the factors, which this "
+                            "estimator cannot fit; fix at most as many as there are factors, or use "
+                            "premium_factors=0 for constant premia")
+        if zeros and self.premium_prior is not None:
+            raise SpecError("a premium prior needs positive own premium variances; drop premium_prior or "
+                            "the own_premium_vol fixed at 0")
+        bound = None if self.max_premium_vol is None else self.premium_variance(self.max_premium_vol, ppy)
         if bound is not None and fixed_q is not None and any(v > bound for v in fixed_q if v == v):
-            raise SpecError("a fixed premium_vol exceeds max_premium_vol; lower one of them")
+            raise SpecError("a fixed own_premium_vol exceeds max_premium_vol; lower one of them")
         return ResolvedSpec(k=k, structure=structure, r=r if structure == "factor" else 0, ppy=ppy,
                             fixed_q=fixed_q, fixed_psi=fixed_psi, max_sigma_diag=bound)
 
@@ -239,12 +286,13 @@ def _identifiable(n: int, m: int) -> bool:
     return m >= 1 and (n - m) ** 2 >= n + m
 
 
-def _per_asset_fixes(fixed, assets, ppy):
-    out = {"premium_vol": None, "return_vol": None}
+def _per_asset_fixes(fixed, assets, ppy, premium_variance):
+    out = {"own_premium_vol": None, "return_vol": None}
+    to_variance = {"own_premium_vol": premium_variance, "return_vol": units.return_variance}
     for key, value in fixed:
         name, _, asset = key.partition(":")
         if name not in FIXABLE:
-            raise SpecError(f"cannot fix {key!r}; fixable: premium_vol, return_vol (optionally NAME:ASSET)")
+            raise SpecError(f"cannot fix {key!r}; fixable: own_premium_vol, return_vol (optionally NAME:ASSET)")
         if not (value >= 0 and math.isfinite(value)):
             raise SpecError(f"fixed {key} must be a non-negative annualised volatility, got {value}")
         if asset and asset not in assets:
@@ -252,7 +300,7 @@ def _per_asset_fixes(fixed, assets, ppy):
         arr = out[name] or [math.nan] * len(assets)
         for i, a in enumerate(assets):
             if not asset or a == asset:
-                arr[i] = value ** 2 / ppy
+                arr[i] = to_variance[name](value, ppy)
         out[name] = arr
-    q, psi = out["premium_vol"], out["return_vol"]
+    q, psi = out["own_premium_vol"], out["return_vol"]
     return (tuple(q) if q else None), (tuple(psi) if psi else None)

@@ -56,6 +56,32 @@ def starting_values(Y: np.ndarray, rs: ResolvedSpec) -> Params:
     return Params.build(lam, q, rs.structure, B=B, psi=psi)
 
 
+def perturbed_start(p: Params, rs: ResolvedSpec, j: int, cap: float | None = None) -> Params:
+    """The ``j``-th (j >= 1) deterministic perturbation of the start ``p`` for a multi-start fit.
+
+    Free own premium variances are scaled by ``10^u``, u uniform on [-1.5, 1.5] (the optimum's
+    signal-to-noise is the least known quantity), loadings row-wise by ``exp(0.5 z)`` with z
+    standard normal, free own return variances and return loadings by ``exp(0.3 z)``; a full H is
+    kept.  Drawn from a generator seeded by ``j`` alone, so a fit is reproducible.  ``cap`` (a
+    per-period bound on the total premium variance) keeps a perturbed start feasible.
+    """
+    rng = np.random.default_rng([20261203, j])
+    N = p.n_assets
+    free_q = np.ones(N, bool) if rs.fixed_q is None else np.isnan(rs.fixed_q)
+    q = np.where(free_q, p.q * 10.0 ** rng.uniform(-1.5, 1.5, N), p.q)
+    lam = p.Lambda * np.exp(0.5 * rng.standard_normal(N))[:, None]
+    if cap is not None:
+        total = (lam ** 2).sum(axis=1) + q
+        shrink = np.minimum(1.0, 0.9 * cap / np.maximum(total, 1e-300))
+        lam, q = lam * np.sqrt(shrink)[:, None], np.where(free_q, q * shrink, q)
+    if rs.structure == "full":
+        return Params.build(lam, q, "full", H=p.H)
+    free_psi = np.ones(N, bool) if rs.fixed_psi is None else np.isnan(rs.fixed_psi)
+    psi = np.where(free_psi, p.psi * np.exp(0.3 * rng.standard_normal(N)), p.psi)
+    B = None if p.B is None else p.B * np.exp(0.3 * rng.standard_normal(N))[:, None]
+    return Params.build(lam, q, rs.structure, B=B, psi=psi)
+
+
 def volatility_scale(Y: np.ndarray, vs: VolScale | None) -> np.ndarray:
     """(T,) squared scale ``s_t^2`` (ones without a scale).
 
