@@ -49,7 +49,7 @@ def demo(
                           "returns_file": str(outcome.returns_file), "truth_file": str(outcome.truth_file),
                           "store": location, "dataset": scenario.DATASET_NAME,
                           "dataset_hash": outcome.dataset_hash, "run_ids": outcome.run_ids,
-                          "as_of": outcome.as_of, "coverage": outcome.coverage,
+                          "as_of": outcome.as_of, "accuracy": outcome.accuracy,
                           "plots": [str(p) for p in outcome.plots], "seconds": outcome.seconds,
                           "periods_per_year": ppy, "units": output.MACHINE_UNITS,
                           "latest": ranked.assign(true_premium=[truth[a] for a in ranked["asset"]]),
@@ -72,9 +72,12 @@ def demo(
     output.show(output.table(f"Newest vintage (run {outcome.run_ids[-1]}), premia at {output.day(last)}: "
                              f"filtered (real-time), annualised % (x{ppy})",
                              ["sleeve", "premium", "90% band", "P(premium > 0)", "true (simulated)"], rows))
-    cover = outcome.coverage
-    output.line(f"the 90% bands cover the simulated true premia in {100 * cover['filtered']:.0f}% "
-                f"(filtered) and {100 * cover['smoothed']:.0f}% (smoothed) of sleeve-months")
+    acc = outcome.accuracy
+    output.line(f"filtered premia vs the simulated truth: RMSE {100 * acc['rmse_filtered']:.2f} points a year, "
+                f"against {100 * acc['rmse_sample_mean']:.2f} for the expanding sample mean "
+                f"({acc['sleeve_months']:.0f} sleeve-months after each sleeve's first {scenario.BURN_IN})")
+    output.line(f"the 90% bands cover the simulated true premia in {100 * acc['coverage_filtered']:.1f}% "
+                f"(filtered) and {100 * acc['coverage_smoothed']:.1f}% (smoothed) of those sleeve-months")
     newest = outcome.run_ids[-1]
     output.line(f"next: riskprem show {newest} | riskprem cross-section {newest} --pairs | "
                 f"riskprem plot {newest} --chart vintages --date {output.day(outcome.as_of[0])} | "
