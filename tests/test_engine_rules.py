@@ -222,3 +222,30 @@ def test_fit_cross_section_matches_kernel_covariance():
     np.testing.assert_allclose(cs.mean, ref.filtered_mean[t, :3], atol=1e-14)
     table = cs.table()
     assert list(table["mean"]) == sorted(table["mean"], reverse=True)
+
+
+def test_parameters_at_a_bound_get_no_standard_error():
+    # Common practice (the usual asymptotics fail at a boundary): a variance at zero gets no
+    # standard error; the others are computed with it held fixed.
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    res = panel.fit(data, panel.ModelSpec(std_errors="always"))
+    rows = res.parameters.set_index("name")
+    assert res.status == "boundary"
+    assert np.isnan(rows.loc["idio_premium_var", "std_error"])
+    assert np.isfinite(rows.loc["return_idio_var", "std_error"]) and rows.loc["return_idio_var", "std_error"] > 0
+    assert "no standard errors for parameters at a bound" in res.message
+
+
+def test_multi_start_keeps_the_best_and_is_deterministic():
+    from panel.bench import simulate
+
+    frame, _, _ = simulate(5, 120, "balanced")
+    one = panel.fit(frame, panel.ModelSpec(std_errors="never"))
+    three = panel.fit(frame, panel.ModelSpec(std_errors="never", starts=3))
+    again = panel.fit(frame, panel.ModelSpec(std_errors="never", starts=3))
+    assert three.objective >= one.objective - 1e-9
+    assert three.objective == again.objective and np.array_equal(three.params.H, again.params.H)
+    assert "best of 3 starts" in three.message and "reached it" in three.message
+    with pytest.raises(panel.SpecError, match="starts"):
+        panel.fit(frame, panel.ModelSpec(starts=0))
