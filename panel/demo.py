@@ -224,9 +224,9 @@ def run_demo(store, folder, *, seed: int = SEED, vintages: int = 4,
     ``progress(step, done, total)`` is called as the work advances.
     """
     from panel import plots
-    from panel.backfill import backfill
+    from panel.vintages.backfill import backfill
     from panel.ingest import read_panel
-    from panel.reproduce import evaluated_run
+    from panel.vintages.reproduce import evaluated_run
     from panel.store import run_tables, write_dataset
 
     t0 = time.perf_counter()

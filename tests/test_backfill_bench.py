@@ -2,7 +2,7 @@
 
 import json
 
-from panel.backfill_bench import QUICK, format_result, main
+from panel.bench.backfill import QUICK, format_result, main
 
 
 def test_quick_benchmark_reports_both_worker_counts_and_identical_vintages(tmp_path, capsys):

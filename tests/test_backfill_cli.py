@@ -8,8 +8,8 @@ import pandas as pd
 import pytest
 from typer.testing import CliRunner
 
-from panel.backfill import find_backfill
-from panel.evaluation import evaluate_backfill, revisions
+from panel.vintages.backfill import find_backfill
+from panel.vintages.evaluation import evaluate_backfill, revisions
 from panel.store import list_runs, open_store, write_dataset
 from tests.backfill_fixtures import NAME, quillmoor_panel
 
@@ -116,7 +116,7 @@ def test_ctrl_c_keeps_the_finished_vintages_and_exits_130(store_file, monkeypatc
     (("revisions", "--data", NAME, "--asset", "tidal_rates", "--date", "2023-10-31"), "has no backfill"),
 ])
 def test_bad_input_is_one_line_on_stderr_exit_1_and_nothing_written(store_file, monkeypatch, args, message):
-    monkeypatch.setattr("panel.backfill_pools.DASK_CONNECT_TIMEOUT", "1s")
+    monkeypatch.setattr("panel.vintages.pools.DASK_CONNECT_TIMEOUT", "1s")
     result = run(store_file, *args, *QUICK)
     assert result.exit_code == 1, result.output
     assert result.stderr.startswith("error: ") and result.stderr.count("\n") == 1

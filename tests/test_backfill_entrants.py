@@ -6,10 +6,11 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from panel.backfill import BackfillInterrupted, backfill, rebuild_vintage, start_from_parameters, vintage_panel
-from panel.backfill_start import merge_start
+from panel.vintages.backfill import BackfillInterrupted, backfill, rebuild_vintage, start_from_parameters, vintage_panel
+from panel.vintages.starts import merge_start
 from panel.data import Panel
-from panel.model.fit import _Problem, fit
+from panel.model.fit import fit
+from panel.model.problem import Problem as _Problem
 from panel.model.params import Params
 from panel.model.spec import ModelSpec
 from panel.model.start import starting_values

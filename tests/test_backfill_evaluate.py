@@ -15,8 +15,8 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from panel.backfill import BackfillError, backfill, find_backfill, list_backfills
-from panel.evaluation import (clark_west, clark_west_terms, default_lags, evaluate_backfill, evaluate_forecasts,
+from panel.vintages.backfill import BackfillError, backfill, find_backfill, list_backfills
+from panel.vintages.evaluation import (clark_west, clark_west_terms, default_lags, evaluate_backfill, evaluate_forecasts,
                               oos_r2, revisions)
 from panel.store import list_runs, run_tables
 from tests.backfill_fixtures import NAME, SPEC, sleeves_store  # noqa: F401

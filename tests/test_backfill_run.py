@@ -5,7 +5,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from panel.backfill import (BackfillError, BackfillInterrupted, Window, backfill, cutoff_dates, plan_backfill,
+from panel.vintages.backfill import (BackfillError, BackfillInterrupted, Window, backfill, cutoff_dates, plan_backfill,
                             rebuild_vintage, settings_key, start_from_parameters, vintage_panel)
 from panel.model.fit import fit
 from panel.model.params import Params
@@ -187,7 +187,7 @@ def test_an_asset_entering_keeps_the_warm_start_chain(tmp_path):
 
 
 def test_a_failing_fit_stops_the_backfill_and_keeps_what_is_stored(sleeves_store, monkeypatch):
-    import panel.backfill as bf
+    import panel.vintages.backfill as bf
 
     store, panel = sleeves_store
     real = bf.fit_vintage
@@ -219,7 +219,7 @@ def test_a_failing_fit_stops_the_backfill_and_keeps_what_is_stored(sleeves_store
     ({"scheduler": "tcp://127.0.0.1:9"}, BackfillError, "cannot reach the Dask scheduler at tcp://127.0.0.1:9"),
 ])
 def test_bad_input_is_one_line_and_writes_nothing(sleeves_store, options, error, message, monkeypatch):
-    monkeypatch.setattr("panel.backfill_pools.DASK_CONNECT_TIMEOUT", "1s")
+    monkeypatch.setattr("panel.vintages.pools.DASK_CONNECT_TIMEOUT", "1s")
     store, panel = sleeves_store
     options = {"start": CUTS["start"], "end": CUTS["end"], **options}
     dataset = options.pop("dataset", NAME)

@@ -11,8 +11,8 @@ import time
 import pytest
 from typer.testing import CliRunner
 
-import panel.backfill_pools as pools
-from panel.backfill import BackfillError, backfill
+import panel.vintages.pools as pools
+from panel.vintages.backfill import BackfillError, backfill
 from panel.store import list_runs, open_store, write_dataset
 from tests.backfill_fixtures import NAME, SPEC, quillmoor_panel, sleeves_store  # noqa: F401
 

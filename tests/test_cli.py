@@ -182,7 +182,7 @@ def test_cross_section_ranks_and_pairwise_probabilities(cli_store):
     assert "P(premium of row > premium of column)" in table.stdout
     assert "Cross-section at 2019-06-30: smoothed" in table.stdout
     # the CLI's numbers are the evaluated fit's (rebuilt from the stored parameters)
-    from panel.reproduce import evaluated_run
+    from panel.vintages.reproduce import evaluated_run
     from panel.store import open_store
 
     with open_store(cli_store.path, read_only=True) as store:

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from panel import ModelSpec, Panel, Prior, fit
-from panel.reproduce import compare_table, record_fit, run_settings
+from panel.vintages.reproduce import compare_table, record_fit, run_settings
 from tests.cli_helpers import cli_small_frame
 
 

@@ -10,7 +10,7 @@ from scipy import optimize
 import panel
 from panel import units
 from panel.model import mstep as ms
-from panel.model.fit import _Problem
+from panel.model.problem import Problem as _Problem
 from panel.model.inference import ljung_box
 from panel.model.start import starting_values
 

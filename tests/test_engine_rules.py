@@ -92,7 +92,7 @@ def test_premium_volatility_cap_with_factors_is_accelerated_and_monotone():
     # k = 1 with a binding cap: no box, so SQUAREM's extrapolations are projected onto the cap.
     # Within the same E-step budget that must climb further than plain EM, never step down, and
     # respect the cap (invented panel simulated from the model).
-    from panel.bench import simulate
+    from panel.bench.fit import simulate
 
     frame, Sigma, _ = simulate(6, 240, "balanced")
     cap = float(np.median(np.sqrt(np.diag(Sigma) * 12 ** 3))) * 0.8   # premium vol, % a year
@@ -238,7 +238,7 @@ def test_parameters_at_a_bound_get_no_standard_error():
 
 
 def test_multi_start_keeps_the_best_and_is_deterministic():
-    from panel.bench import simulate
+    from panel.bench.fit import simulate
 
     frame, _, _ = simulate(5, 120, "balanced")
     one = panel.fit(frame, panel.ModelSpec(std_errors="never"))

@@ -72,3 +72,35 @@ def test_zero_own_premium_vol_needs_no_more_assets_than_factors():
         ModelSpec(fixed={"own_premium_vol": 0.0}).resolve(3, 12, 100, ASSETS)
     rs = ModelSpec(fixed={"own_premium_vol:Ridge Credit": 0.0}).resolve(3, 12, 100, ASSETS)
     assert rs.fixed_q[1] == 0.0
+
+
+def test_a_run_stored_before_the_convention_shows_converted_and_reproduces_bit_for_bit(tmp_path):
+    # A run written by riskprem before 2026-12: its settings carry no premium_vol_convention, and its
+    # premium prior meant q = vol^2 / ppy.  It must reproduce exactly and show today's units.
+    import json
+
+    from typer.testing import CliRunner
+
+    from panel.cli.app import app
+    from panel.store import open_store, write_dataset, write_run
+    from panel.vintages.reproduce import record_fit, reproduce
+    from tests.cli_helpers import cli_small_frame
+
+    data = panel.Panel.from_frame(cli_small_frame(seed=13) / 100.0)
+    legacy = ModelSpec(premium_prior=panel.Prior(vol=0.01, weight=60), std_errors="never",
+                       premium_vol_convention=units.LEGACY)
+    res = panel.fit(data, legacy)
+    path = tmp_path / "old.duckdb"
+    with open_store(path) as store:
+        digest = write_dataset(store, data, "old sleeves")
+        run, tables = record_fit(res, digest)
+        del run["settings"]["spec"]["premium_vol_convention"]      # as the old code wrote it
+        run_id = write_run(store, run, tables)
+    with open_store(path, read_only=True) as store:
+        again = reproduce(store, run_id, rtol=0.0)
+    assert again.ok                                                # bit for bit (rtol 0)
+    shown = CliRunner().invoke(app, ["--store", str(path), "show", str(run_id)])
+    assert shown.exit_code == 0, shown.output
+    assert "12% a year (stored as 1 in the legacy sqrt(q x ppy) convention)" in shown.stdout
+    stored = json.loads(CliRunner().invoke(app, ["--store", str(path), "runs", "--json"]).stdout)
+    assert stored["runs"][0]["id"] == run_id

@@ -1,6 +1,6 @@
 """``backfill``, ``revisions``, ``evaluate``: vintages at past cut-offs and what they say.
 
-The work is done by :mod:`panel.backfill` and :mod:`panel.evaluation`; this module parses options,
+The work is done by :mod:`panel.vintages.backfill` and :mod:`panel.vintages.evaluation`; this module parses options,
 shows progress and prints.  The three commands take the model options of ``riskprem fit`` (the
 settings of a backfill); ``revisions`` and ``evaluate`` use them, or ``--key``, to pick the backfill
 when a dataset has several.
@@ -39,7 +39,7 @@ class SeKind(str, Enum):
 
 def _chosen_backfill(store, data: str, key: str | None, window, model: ModelOptions):
     """The backfill meant by --key, by the model options, or the dataset's only one."""
-    from panel.backfill import find_backfill
+    from panel.vintages.backfill import find_backfill
 
     given = model.given() or window is not None
     if key and given:
@@ -146,7 +146,7 @@ def backfill(
     backfill (Ctrl-C keeps every finished vintage; exit code 130).  Results do not depend on
     --workers or --scheduler: warm starts follow fixed chains of --chain cut-offs.
     """
-    from panel.backfill import BackfillInterrupted, default_workers, plan_backfill, run_backfill
+    from panel.vintages.backfill import BackfillInterrupted, default_workers, plan_backfill, run_backfill
 
     st = state(ctx)
     parse_date(start, "--start")
@@ -232,7 +232,7 @@ def revisions(
     smoothed minus first-release filtered, over the dates at least two vintages cover).  Tables are
     annualised percent; --json and --csv keep per-period decimals.
     """
-    from panel.evaluation import revisions as revision_path
+    from panel.vintages.evaluation import revisions as revision_path
 
     st = state(ctx)
     day = parse_date(date, "--date")
@@ -300,7 +300,7 @@ def evaluate(
     pooled: out-of-sample R² (Campbell & Thompson 2008; above 0 = better than the historical mean)
     and the Clark & West (2007) MSPE-adjusted t-statistic with its one-sided p-value.
     """
-    from panel.evaluation import evaluate_backfill
+    from panel.vintages.evaluation import evaluate_backfill
 
     st = state(ctx)
     if lags is not None and se is SeKind.plain:

@@ -26,7 +26,7 @@ DEFAULT_LOCK_WAIT = 10.0
 
 def user_error_types() -> tuple[type[BaseException], ...]:
     """The library errors that mean "bad input": printed as one line, exit code 1."""
-    from panel.backfill import BackfillError
+    from panel.vintages.backfill import BackfillError
 
     return (SpecError, IngestError, StoreError, BackfillError)
 

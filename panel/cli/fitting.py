@@ -89,7 +89,7 @@ def fit(
     written only after a successful fit, in one transaction.
     """
     from panel.model.fit import fit as estimate
-    from panel.reproduce import record_fit
+    from panel.vintages.reproduce import record_fit
 
     st: State = state(ctx)
     if (data is None) == (file is None):
@@ -180,7 +180,7 @@ def reproduce(
     Exit code 0 only when every number is within tolerance (|a - b| <= atol + rtol max(|a|, |b|));
     library versions and platform, recorded and now, are shown beside the numbers.
     """
-    from panel.reproduce import reproduce as rebuild
+    from panel.vintages.reproduce import reproduce as rebuild
 
     st = state(ctx)
     with store_for(st, write=save) as store, user_errors():

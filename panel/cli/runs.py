@@ -109,7 +109,7 @@ def runs(ctx: typer.Context,
 
 def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     """One run: its record, model settings, per-asset parameters (annualised) and latest premia."""
-    from panel.reproduce import run_inputs, stored_params
+    from panel.vintages.reproduce import run_inputs, stored_params
     from panel.store import run_tables
 
     st = state(ctx)
@@ -183,7 +183,7 @@ def estimates(
     as_json: JsonFlag = False, as_csv: CsvFlag = False,
 ) -> None:
     """A run's premium estimates per asset and date (annualised %, with 90% bands)."""
-    from panel.reproduce import run_inputs
+    from panel.vintages.reproduce import run_inputs
     from panel.store import run_tables
 
     st = state(ctx)
@@ -241,7 +241,7 @@ def cross_section(
 ) -> None:
     """The premia at one date, ranked, with 90% bands and P(premium > 0); --pairs adds the
     probability that one premium exceeds another (from their joint posterior)."""
-    from panel.reproduce import evaluated_run
+    from panel.vintages.reproduce import evaluated_run
 
     st = state(ctx)
     when = parse_date(date, "--date")
@@ -306,7 +306,7 @@ def diff(ctx: typer.Context,
          run_b: Annotated[int, typer.Argument(help="Second run id.", show_default=False)],
          as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
     """Two runs side by side: fit statistics, settings that differ, latest premia and parameters."""
-    from panel.reproduce import run_inputs
+    from panel.vintages.reproduce import run_inputs
     from panel.store import run_query, run_tables
 
     st = state(ctx)
@@ -451,7 +451,7 @@ def plot(
 ) -> None:
     """Draw a PNG chart of a run (annualised %, 90% bands, as-of date in the title)."""
     from panel import plots
-    from panel.reproduce import evaluated_run, run_inputs, vintage_history
+    from panel.vintages.reproduce import evaluated_run, run_inputs, vintage_history
     from panel.store import run_tables
 
     st = state(ctx)

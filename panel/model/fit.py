@@ -10,15 +10,13 @@ import time
 import numpy as np
 import pandas as pd
 
-from panel import units
-from panel.data import Panel
-from panel.kalman import paths
 from panel.model import inference, mstep as ms
 from panel.model.em import run_em
-from panel.model.params import Packer, Params, count_free
+from panel.model.params import Params, count_free
+from panel.model.problem import Problem, as_panel
 from panel.model.result import PanelFit
-from panel.model.spec import ModelSpec, ResolvedSpec, SpecError
-from panel.model.start import perturbed_start, starting_values, volatility_scale
+from panel.model.spec import ModelSpec, SpecError
+from panel.model.start import perturbed_start, starting_values
 
 #: Free parameters above which ``std_errors="auto"`` skips the observed information.
 AUTO_SE_LIMIT = 150
@@ -27,62 +25,10 @@ AUTO_SE_LIMIT = 150
 SAME_OPTIMUM = 0.01
 
 
-def _as_panel(data) -> Panel:
-    if isinstance(data, Panel):
-        return data
-    if isinstance(data, pd.DataFrame):
-        return Panel.from_frame(data)
-    raise TypeError("fit() takes a panel.data.Panel or a dates x assets DataFrame")
-
-
-class _Problem:
-    """Arrays and settings shared by the EM loop, inference and reporting of one fit."""
-
-    def __init__(self, panel: Panel, spec: ModelSpec):
-        self.panel = panel
-        self.spec = spec
-        self.Y = panel.values.to_numpy(dtype=float)
-        T, N = self.Y.shape
-        if N == 0 or T == 0:
-            raise SpecError("the panel is empty")
-        if np.isnan(self.Y).all(axis=0).any():
-            bad = [a for a, e in zip(panel.assets, np.isnan(self.Y).all(axis=0)) if e]
-            raise SpecError(f"assets with no observation: {', '.join(bad)}; drop them")
-        self.rs: ResolvedSpec = spec.resolve(N, panel.periods_per_year, T, panel.assets)
-        ppy = self.rs.ppy
-        self.s2 = volatility_scale(self.Y, spec.vol_scale)
-        ip = spec.initial_premium
-        self.init = None if ip is None else (ip.mean / ppy, (ip.vol / ppy) ** 2)
-        self.packer = Packer(self.rs, N)
-        self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
-        self.h_prior = self._prior(spec.return_prior, units.return_variance)
-        self.n_obs = int((~np.isnan(self.Y)).sum())
-        self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
-
-    def _prior(self, prior, to_variance):
-        if prior is None:
-            return ms.PriorTerms()
-        return ms.PriorTerms(weight=prior.weight, v=to_variance(prior.vol, self.rs.ppy))
-
-    def estep(self, p: Params):
-        parts = None
-        if p.psi is not None:           # diagonal or factor H: the cheaper exact eigenproblem
-            parts = (np.zeros((p.n_assets, 0)) if p.B is None else p.B, p.psi)
-        return self.plan.estep(p.Sigma, p.H, h_parts=parts)
-
-    def objective(self, e, p: Params) -> float:
-        return e.loglik + ms.log_prior(p, self.sigma_prior, self.h_prior)
-
-    def score(self, theta, like: Params) -> np.ndarray:
-        p = self.packer.unpack(theta, like)
-        return ms.expected_complete_loglik_grad(self.estep(p), p, self.rs, self.packer,
-                                                self.sigma_prior, self.h_prior)
-
-
 def default_start(data, spec: ModelSpec | None = None) -> tuple[Params, str]:
     """The moment-based starting values :func:`fit` uses when no ``start`` is given, and the H
     structure the spec resolves to for ``data`` (Panel or DataFrame)."""
-    prob = _Problem(_as_panel(data), spec or ModelSpec())
+    prob = Problem(as_panel(data), spec or ModelSpec())
     return starting_values(prob.Y, prob.rs), prob.rs.structure
 
 
@@ -98,9 +44,9 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     progress : optional ``callable(n_estep, objective)``, called after every accepted EM step.
     """
     t0 = time.perf_counter()
-    panel = _as_panel(data)
+    panel = as_panel(data)
     spec = spec or ModelSpec()
-    prob = _Problem(panel, spec)
+    prob = Problem(panel, spec)
     rs = prob.rs
     n_free = count_free(rs, prob.Y.shape[1])
     _check_estimable(prob, n_free)
@@ -140,7 +86,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
                    time.perf_counter() - t0)
 
 
-def _estimate(prob: _Problem, p0: Params, floor: np.ndarray, progress):
+def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
     """One EM run (with its accelerations) from ``p0``."""
     spec, rs = prob.spec, prob.rs
     return run_em(
@@ -152,7 +98,7 @@ def _estimate(prob: _Problem, p0: Params, floor: np.ndarray, progress):
         **_quasi_newton_setup(prob, floor))
 
 
-def _check_estimable(prob: _Problem, n_free: int) -> None:
+def _check_estimable(prob: Problem, n_free: int) -> None:
     """Refuse, with one line, data on which the likelihood has no proper maximum."""
     Y, assets, rs = prob.Y, prob.panel.assets, prob.rs
     T, N = Y.shape
@@ -174,7 +120,7 @@ def _check_estimable(prob: _Problem, n_free: int) -> None:
                         "its likelihood is unbounded; use return_shocks='factor' or 'diagonal'")
 
 
-def _quasi_newton_setup(prob: _Problem, floor: np.ndarray) -> dict:
+def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
     finish) and the score.  With factors and a premium-volatility cap the bound is not a box:
     then no quasi-Newton finish, and SQUAREM's extrapolated points are projected onto it by the
@@ -215,8 +161,8 @@ def _quasi_newton_setup(prob: _Problem, floor: np.ndarray) -> dict:
 def evaluate(data, params: Params, spec: ModelSpec | None = None) -> PanelFit:
     """Filter and smooth at given parameters (no estimation): the known-parameters filter."""
     t0 = time.perf_counter()
-    panel = _as_panel(data)
-    prob = _Problem(panel, spec or ModelSpec())
+    panel = as_panel(data)
+    prob = Problem(panel, spec or ModelSpec())
     p = _check_start(params, prob)
     e = prob.estep(p)
     obj = prob.objective(e, p)
@@ -225,7 +171,7 @@ def evaluate(data, params: Params, spec: ModelSpec | None = None) -> PanelFit:
                    time.perf_counter() - t0)
 
 
-def _check_start(p: Params, prob: _Problem) -> Params:
+def _check_start(p: Params, prob: Problem) -> Params:
     N = prob.Y.shape[1]
     rs = prob.rs
     if p.n_assets != N or p.Lambda.shape[1] != rs.k or p.H.shape != (N, N):
@@ -271,17 +217,6 @@ def _boundary_status(p, rs, floor, assets, status, message):
         return status, message
     # "boundary" qualifies a converged fit; an unfinished one keeps saying why it stopped
     return ("boundary" if status == "converged" else status), f"{message}; " + "; ".join(notes)
-
-
-def covariance_at(res: PanelFit, t: int, kind: str):
-    """(mean, cov, active mask) of the premia at date index ``t`` (one dense pass)."""
-    prob = _Problem(res.panel, res.spec)
-    p = res.params
-    out = prob.plan.report(p.Sigma, p.H, cov_at=(t,))
-    mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
-    active = ~np.isnan(mean)
-    cov = out.covariances[t][kind][np.ix_(active, active)]
-    return mean[active], cov, active
 
 
 def _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se, elapsed):

@@ -120,7 +120,7 @@ class PanelFit:
 
     def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
         """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
-        from panel.model.fit import covariance_at  # local: fit imports this module
+        from panel.model.problem import covariance_at  # the plan is built only when asked
 
         if kind not in ("filtered", "smoothed"):
             raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")

@@ -119,12 +119,12 @@ def _ours(frame, time_budget, want_iteration=True):
     import panel
     from panel.kalman import paths
     from panel.model import mstep as ms
-    from panel.model.fit import _Problem
+    from panel.model.problem import Problem
     from panel.model.start import starting_values
 
     pan = panel.Panel.from_frame(frame)
     spec = panel.ModelSpec(time_budget=time_budget)
-    prob = _Problem(pan, spec)
+    prob = Problem(pan, spec)
     p0 = starting_values(prob.Y, prob.rs)
     floor = ms.VAR_FLOOR * float(np.mean(np.diag(p0.H)))
     prob.estep(p0)                                   # warm-up (memoised basis), as inside a fit
@@ -176,7 +176,7 @@ def _spawn(task: dict, threads: int) -> dict:
     env = dict(os.environ)
     for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
         env[var] = str(threads)
-    proc = subprocess.run([sys.executable, "-m", "panel.bench", "--worker", json.dumps(task)],
+    proc = subprocess.run([sys.executable, "-m", "panel.bench.fit", "--worker", json.dumps(task)],
                           env=env, capture_output=True, text=True)
     if proc.returncode != 0:
         return {**task, "error": proc.stderr.strip().splitlines()[-1] if proc.stderr else "failed"}

@@ -1,0 +1,79 @@
+"""One fit's problem: the panel's arrays, the resolved spec, priors and the E-step plan, prepared once
+and shared by the estimator (:mod:`panel.model.fit`), inference and reporting (cross-sections).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from panel import units
+from panel.data import Panel
+from panel.kalman import paths
+from panel.model import mstep as ms
+from panel.model.params import Packer, Params
+from panel.model.spec import ModelSpec, ResolvedSpec, SpecError
+from panel.model.start import volatility_scale
+
+
+def as_panel(data) -> Panel:
+    if isinstance(data, Panel):
+        return data
+    if isinstance(data, pd.DataFrame):
+        return Panel.from_frame(data)
+    raise TypeError("fit() takes a panel.data.Panel or a dates x assets DataFrame")
+
+
+class Problem:
+    """Arrays and settings shared by the EM loop, inference and reporting of one fit."""
+
+    def __init__(self, panel: Panel, spec: ModelSpec):
+        self.panel = panel
+        self.spec = spec
+        self.Y = panel.values.to_numpy(dtype=float)
+        T, N = self.Y.shape
+        if N == 0 or T == 0:
+            raise SpecError("the panel is empty")
+        if np.isnan(self.Y).all(axis=0).any():
+            bad = [a for a, e in zip(panel.assets, np.isnan(self.Y).all(axis=0)) if e]
+            raise SpecError(f"assets with no observation: {', '.join(bad)}; drop them")
+        self.rs: ResolvedSpec = spec.resolve(N, panel.periods_per_year, T, panel.assets)
+        ppy = self.rs.ppy
+        self.s2 = volatility_scale(self.Y, spec.vol_scale)
+        ip = spec.initial_premium
+        self.init = None if ip is None else (ip.mean / ppy, (ip.vol / ppy) ** 2)
+        self.packer = Packer(self.rs, N)
+        self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
+        self.h_prior = self._prior(spec.return_prior, units.return_variance)
+        self.n_obs = int((~np.isnan(self.Y)).sum())
+        self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
+
+    def _prior(self, prior, to_variance):
+        if prior is None:
+            return ms.PriorTerms()
+        return ms.PriorTerms(weight=prior.weight, v=to_variance(prior.vol, self.rs.ppy))
+
+    def estep(self, p: Params):
+        parts = None
+        if p.psi is not None:           # diagonal or factor H: the cheaper exact eigenproblem
+            parts = (np.zeros((p.n_assets, 0)) if p.B is None else p.B, p.psi)
+        return self.plan.estep(p.Sigma, p.H, h_parts=parts)
+
+    def objective(self, e, p: Params) -> float:
+        return e.loglik + ms.log_prior(p, self.sigma_prior, self.h_prior)
+
+    def score(self, theta, like: Params) -> np.ndarray:
+        p = self.packer.unpack(theta, like)
+        return ms.expected_complete_loglik_grad(self.estep(p), p, self.rs, self.packer,
+                                                self.sigma_prior, self.h_prior)
+
+
+def covariance_at(res, t: int, kind: str):
+    """(mean, cov, active mask) of the premia at date index ``t`` of the fit ``res`` (one dense pass)."""
+    prob = Problem(res.panel, res.spec)
+    p = res.params
+    out = prob.plan.report(p.Sigma, p.H, cov_at=(t,))
+    mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
+    active = ~np.isnan(mean)
+    cov = out.covariances[t][kind][np.ix_(active, active)]
+    return mean[active], cov, active
