@@ -3,7 +3,8 @@
 A :class:`Panel` holds excess returns in **decimal per period** (0.01 = 1% in one period) as a
 ``dates x assets`` float64 DataFrame, NaN for missing, with its content hash (the dataset identity
 used by the store and by ``reproduce``).  Ingest (``panel.ingest``) builds it from files; tests and
-the Python API may build it from a DataFrame with :func:`Panel.from_frame`.
+the Python API may build it from a DataFrame with :func:`Panel.from_frame`, which checks the frame
+by the same rules (one-line ``ValueError``).
 """
 
 from __future__ import annotations

@@ -3,7 +3,8 @@
 Order of checks (the first failure is reported, so errors are deterministic): file readable and
 not empty -> header (names, date column, layout) -> dates -> numeric cells -> duplicates ->
 risk-free cells -> assets with no values (dropped, warning) -> frequency and period ends ->
-units -> extreme values -> risk-free rates on the grid -> assets with too few observations
+units -> extreme values -> risk-free rates (frequency of a rate file, level, single rates,
+dates on the grid: :mod:`panel.ingest.riskfree`) -> assets with too few observations
 (dropped or refused) -> number of usable assets.  Within a check the first offending cell in file
 order (row, then column) is named.  Unsorted dates are sorted, with a warning.
 """
