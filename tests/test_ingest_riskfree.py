@@ -97,6 +97,7 @@ def test_decimal_rates_beside_percent_returns_warn(tmp_path):
     (-0.0006, 1.0, None),         # -0.72% a year: slightly negative rates (e.g. CHF, EUR bills)
     (0.0044, 1.0, None),          # 5.28% a year in decimal beside decimal returns
     (0.44, 100.0, "percent"),     # the same in percent beside percent returns
+    (0.0, 100.0, "percent"),      # a zero rate is deliberate: no near-zero warning
 ])
 def test_plausible_rates_pass_silently(tmp_path, rate, scale, units):
     panel = read_panel(_with_column(tmp_path, rate, scale), units=units, total_returns=True,
@@ -177,3 +178,17 @@ def test_french_risk_free_misquoted_is_refused(tmp_path, french_total, factor, r
     message = _refused(tmp_path / "french.csv")
     assert message.startswith("french.csv: risk-free rates in column 'RF' look too large")
     assert reading in message
+
+
+def test_french_near_zero_bill_rates_in_percent(tmp_path, french_total):
+    # Source: linearmodels.datasets.french, 2010-2015 (bills near zero, largest 0.12% a year).
+    # In percent beside percent returns they pass silently; left in decimal they warn.
+    window = french_total.loc["2010":"2015"] * 100
+    window.to_csv(tmp_path / "percent.csv")
+    panel = read_panel(tmp_path / "percent.csv", units="percent", total_returns=True,
+                       risk_free="RF")
+    assert _rf_warnings(panel) == []
+    window.assign(RF=window["RF"] / 100).to_csv(tmp_path / "mixed.csv")
+    mixed = read_panel(tmp_path / "mixed.csv", units="percent", total_returns=True, risk_free="RF")
+    (note,) = _rf_warnings(mixed)
+    assert "near zero beside returns in percent" in note and "multiply them by 100" in note

@@ -17,7 +17,7 @@ peaked near 16% a year in 1981 and averaged about 3-4% in the long run):
    currencies) pass with ``allow_extreme``.
 3. ``10% < a <= 20%`` on sub-annual data gives a warning (an annual rate of 0.8-1.7% quoted per
    month lands here; so do genuine 1979-1982 dollar rates).
-4. Beside returns in percent, ``max |rate| x periods per year < 0.1%`` gives a warning: decimal
+4. Beside returns in percent, ``0 < max |rate| x periods per year < 0.1%`` warns: decimal
    rates beside percent returns are 100 times too small, but their level alone cannot tell them
    from near-zero rates.
 5. One rate at or below -100% per period, or beyond +-100% (unless ``allow_extreme``), is refused
@@ -171,9 +171,12 @@ def _check_level(cells: RateCells, grid: Grid, present: np.ndarray, decimal: np.
     if ppy > 1 and yearly > HIGH_YEARLY_RATE:
         return (f"{seen} are high: {told}; if they are annual rates, divide them by {ppy} "
                 f"(simple per-{grid.unit()} rates)")
-    if units == "percent" and float(size.max()) * ppy < LOW_YEARLY_RATE:
-        return (f"{seen} are near zero beside returns in percent: {told}; if they are decimal "
-                "rates, multiply them by 100 (or give the returns in decimal too)")
+    largest = float(size.max())
+    if units == "percent" and 0 < largest * ppy < LOW_YEARLY_RATE:  # all zero: deliberate
+        top = float(np.max(np.abs(cells.value[present])))
+        return (f"{seen} are near zero beside returns in percent: the largest, {top:.4g} per "
+                f"{grid.unit()}, is {_percent(largest * ppy)} a year; if they are decimal rates, "
+                "multiply them by 100 (or give the returns in decimal too)")
     return None
 
 
