@@ -195,8 +195,8 @@ def _numeric(column: pd.Series, name: str, dates: pd.DatetimeIndex) -> np.ndarra
     if bad.size:
         k = int(bad[0])
         raise ValueError(f"Panel.from_frame: asset {name!r}, date {dates[k].date()}: "
-                         f"{repr(column.iloc[k])[:40]} is not a number; write a decimal return or NaN "
-                         "for a missing value")
+                         f"{repr(column.iloc[k])[:40]} is not a number; write a decimal return "
+                         "or NaN for a missing value")
     array = numbers.to_numpy(dtype="float64", na_value=np.nan)
     infinite = np.flatnonzero(np.isinf(array))
     if infinite.size:

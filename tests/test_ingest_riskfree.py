@@ -116,7 +116,8 @@ def _rate_file(tmp_path: Path, dates, rate: float = 0.001) -> str:
 
 @pytest.mark.parametrize("rf_dates, returns_freq, parts", [
     (pd.bdate_range("2015-01-01", "2017-12-31"), "ME",
-     ["risk-free dates are daily", "returns are monthly", "daily rates compounded over each month"]),
+     ["risk-free dates are daily", "returns are monthly",
+      "daily rates compounded over each month"]),
     (pd.date_range("2015-03-31", periods=12, freq="QE"), "ME",
      ["risk-free dates are quarterly", "one simple per-month rate for each month"]),
     (pd.date_range("2015-01-31", periods=36, freq="ME"), "QE",

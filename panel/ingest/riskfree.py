@@ -116,7 +116,9 @@ def rates_on_grid(cells: RateCells, fitted: Fitted, decimal: np.ndarray, units: 
     unique, inverse = np.unique(cells.date[present], return_inverse=True)
     if cells.source == "file":
         _check_frequency(cells, unique, grid)
-    note = _check_level(cells, grid, present, decimal, units, allow_extreme) if present.size else None
+    note = None
+    if present.size:
+        note = _check_level(cells, grid, present, decimal, units, allow_extreme)
     for k in present:
         if decimal[k] <= -1.0 or (abs(decimal[k]) > 1.0 and not allow_extreme):
             raw = cells.table.column(cells.column)[cells.row[k]]
@@ -211,8 +213,9 @@ def _check_frequency(cells: RateCells, dates: np.ndarray, grid: Grid) -> None:
         return
     finer = NOMINAL_DAYS[own] < NOMINAL_DAYS[grid.code]
     how = (f" (the {_ADJECTIVE[own]} rates compounded over each {grid.unit()})" if finer else "")
+    days = f"{spacing:g} day{'' if spacing == 1 else 's'}"
     raise IngestError(f"{cells.table.name}: risk-free dates are {_ADJECTIVE[own]} (median "
-                      f"spacing {spacing:g} day{'' if spacing == 1 else 's'}, from {day(dates[0])}) but the returns are "
+                      f"spacing {days}, from {day(dates[0])}) but the returns are "
                       f"{grid.describe()}; give one simple per-{grid.unit()} rate for each "
                       f"{grid.unit()} of the returns{how}")
 
