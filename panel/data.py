@@ -139,8 +139,15 @@ def _checked_frame(values) -> tuple[pd.DataFrame, tuple[str, ...]]:
         first = int(np.flatnonzero(day == day[k])[0])
         raise ValueError(f"Panel.from_frame: date {day[k].date()} appears twice (rows {first + 1} "
                          f"and {k + 1}); keep one row per date")
-    matrix = np.column_stack([_numeric(values.iloc[:, j], names[j], day)
-                              for j in range(values.shape[1])])
+    if all(dtype == np.float64 for dtype in values.dtypes):  # the usual case, in one step
+        matrix = values.to_numpy(dtype="float64", copy=True)
+        infinite = np.flatnonzero(np.isinf(matrix).any(axis=0))
+        if infinite.size:  # let the per-column check name the cell
+            j = int(infinite[0])
+            _numeric(values.iloc[:, j], names[j], day)
+    else:
+        matrix = np.column_stack([_numeric(values.iloc[:, j], names[j], day)
+                                  for j in range(values.shape[1])])
     frame = pd.DataFrame(matrix, index=pd.DatetimeIndex(day, name="date"), columns=names)
     notes = []
     if not frame.index.is_monotonic_increasing:
@@ -148,7 +155,7 @@ def _checked_frame(values) -> tuple[pd.DataFrame, tuple[str, ...]]:
         notes.append(f"dates were not in order (row {k + 1}: {frame.index[k].date()} after "
                      f"{frame.index[k - 1].date()}); sorted by date")
         frame = frame.sort_index()
-    empty = [a for a in names if frame[a].isna().all()]
+    empty = [a for a, none in zip(names, np.isnan(matrix).all(axis=0)) if none]
     if len(empty) == len(names):
         raise ValueError("Panel.from_frame: no returns: every cell is NaN; fill in the returns "
                          "(NaN = missing)")
