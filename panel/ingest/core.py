@@ -3,7 +3,8 @@
 Order of checks (the first failure is reported, so errors are deterministic): file readable and
 not empty -> header (names, date column, layout) -> dates -> numeric cells -> duplicates ->
 risk-free cells -> assets with no values (dropped, warning) -> frequency and period ends ->
-units -> extreme values -> risk-free rates on the grid -> assets with too few observations
+units -> extreme values -> risk-free rates (frequency of a rate file, level, single rates,
+dates on the grid: :mod:`panel.ingest.riskfree`) -> assets with too few observations
 (dropped or refused) -> number of usable assets.  Within a check the first offending cell in file
 order (row, then column) is named.  Unsorted dates are sorted, with a warning.
 """
@@ -83,8 +84,9 @@ def read_panel(path, options: IngestOptions | None = None, **fields) -> Panel:
     _refuse_extreme(records, value, options, grid.unit(), impossible=False)
     risk_free_meta = None
     if rate_cells is not None:
-        rates = rates_on_grid(rate_cells, fitted, to_decimal(rate_cells.value, units),
-                              options.allow_extreme)
+        rates, note = rates_on_grid(rate_cells, fitted, to_decimal(rate_cells.value, units),
+                                    units, options.allow_extreme)
+        warnings += [note] if note else []
         if options.returns == "simple":
             _refuse_extreme(records, value, options, grid.unit(), impossible=True)
         rate = _rates_for(records, period, rates, fitted, rate_cells)
@@ -196,7 +198,11 @@ def _rates_for(records: Records, period: np.ndarray, rates: dict[int, float], fi
         also = ""
         if len(periods) > 1:
             also = f" (missing for {listed(day(e) for e in fitted.grid.ends(periods))})"
-        where = (f"column {cells.column!r}" if cells.source == "column" else cells.table.name)
+        where = f"column {cells.column!r}"
+        if cells.source == "file":
+            span = cells.date[~np.isnan(cells.value)]
+            where = (f"{cells.table.name} (its rates run from {day(span.min())} to "
+                     f"{day(span.max())})" if span.size else cells.table.name)
         raise IngestError(f"{records.table.name}: {records.where(k)}: no risk-free rate for the "
                           f"{fitted.grid.unit()} ending {day(fitted.grid.ends([period[k]])[0])}"
                           f"{also}; add the rates to {where}")

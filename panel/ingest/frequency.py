@@ -218,6 +218,16 @@ def check_gaps(fitted: Fitted, used: np.ndarray) -> str | None:
             "kept as missing")
 
 
+def median_spacing(dates: np.ndarray) -> float:
+    """Median spacing in days of sorted distinct ``dates`` (at least two)."""
+    return float(np.median(np.diff(np.asarray(dates, dtype="datetime64[D]").astype(np.int64))))
+
+
+def by_closeness(spacing: float) -> list[str]:
+    """Frequency codes, the one whose nominal spacing is closest to ``spacing`` days first."""
+    return sorted(NOMINAL_DAYS, key=lambda c: abs(math.log(spacing / NOMINAL_DAYS[c])))
+
+
 def fit_grid(dates: np.ndarray, check: Callable[[Fitted], str | None], code: str | None = None,
              labels: bool = False) -> tuple[Fitted, tuple[str, ...]]:
     """Pick the frequency of sorted distinct ``dates`` (rule in the module docstring).
@@ -232,8 +242,8 @@ def fit_grid(dates: np.ndarray, check: Callable[[Fitted], str | None], code: str
     if code is not None:
         order, explain = [code], code
     else:
-        spacing = float(np.median(np.diff(dates.astype(np.int64))))
-        order = sorted(NOMINAL_DAYS, key=lambda c: abs(math.log(spacing / NOMINAL_DAYS[c])))
+        spacing = median_spacing(dates)
+        order = by_closeness(spacing)
         # When nothing fits, the coarsest frequency not coarser than the data explains it best
         # (every other month: "months missing" beats "quarters don't line up").
         slower = [c for c in NOMINAL_DAYS if NOMINAL_DAYS[c] <= 1.1 * spacing]

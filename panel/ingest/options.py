@@ -42,7 +42,8 @@ class IngestOptions:
         True: the file holds total returns and ``risk_free`` gives the rate to subtract.
     risk_free : str or None
         A column of the same file, or the path of a file with a date column and one rate column.
-        Rates are simple per-period rates in the same units as the returns.
+        Rates are simple per-period rates in the same units as the returns; implausible levels
+        (an annual rate, percent beside decimal) are refused (rules in :mod:`panel.ingest.riskfree`).
     min_obs : int
         Fewest non-missing observations an asset needs (default 24).
     on_short : "drop" | "refuse"
@@ -50,7 +51,8 @@ class IngestOptions:
     min_assets : int
         Fewest usable assets (the caller passes 2 for a model with common factors).
     allow_extreme : bool
-        Accept per-period returns beyond +-100% (|r| > 1.0 decimal).
+        Accept per-period returns beyond +-100% (|r| > 1.0 decimal), and risk-free rates whose
+        median exceeds 20% a year (with a warning).
     frequency : None | "B" | "W" | "M" | "Q" | "A"
         None infers it from the dates (rule in :mod:`panel.ingest.frequency`).
     """
