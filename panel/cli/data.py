@@ -122,7 +122,7 @@ def ingest(
                             "has fewer than --min-obs observations (default: drop it with a warning).")]
     = False,
     allow_extreme: Annotated[bool, typer.Option("--allow-extreme", help="Accept returns beyond +-100% "
-                             "a period.")] = False,
+                             "a period, and risk-free rates above 20% a year (median).")] = False,
     as_json: JsonFlag = False,
 ) -> None:
     """Read a return file, validate it and store it as a dataset snapshot.
