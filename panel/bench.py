@@ -293,11 +293,13 @@ def format_table(res: dict) -> str:
         else:
             lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['em_iter_s']:>9.4f} "
                          f"{r['dfmq_iter_s']:>9.3f} {r['em_ratio']:>8.0f}")
-    lines += ["(c) our full fit (panel.fit, default ModelSpec) and scale rows (ours alone)",
+    lines += ["(c) our full fit (panel.fit, default ModelSpec); scale rows and (e) ragged fits "
+              "(ours alone, each in its own worker)",
               f"{'N':>4} {'T':>5} {'pattern':<10} {'estep_s':>9} {'report_s':>9} {'fit_s':>9} "
               f"{'E-steps':>8} {'status':<12} {'loglik':>14} {'peakRSS_MB':>10}"]
-    for r in res["compare"] + res["scale"]:
+    for r in res["compare"] + res["scale"] + res.get("ragged_fit", []):
         if "error" in r:
+            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} ERROR {r['error']}")
             continue
         lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['estep_s']:>9.4f} "
                      f"{r['report_s']:>9.3f} {r['fit_s']:>9.2f} {r['fit_esteps']:>8d} "
@@ -315,17 +317,6 @@ def format_table(res: dict) -> str:
                          f"{r['missing_cells']:>7d} {r['estep_s']:>9.4f} {r['vs_balanced']:>6.1f} "
                          f"{r['sm_smoother_s']:>8.2f} {r['smoother_ratio']:>8.0f} "
                          f"{r['loglik_rel_diff']:>10.1e} {r['worker_peak_rss_mb']:>7.0f}")
-    if res.get("ragged_fit"):
-        lines += ["(e) ragged fits (panel.fit, default ModelSpec), each in its own worker",
-                  f"{'N':>4} {'T':>5} {'pattern':<10} {'method':<8} {'estep_s':>9} {'fit_s':>9} "
-                  f"{'E-steps':>8} {'status':<12} {'loglik':>14} {'peakRSS_MB':>10}"]
-        for r in res["ragged_fit"]:
-            if "error" in r:
-                lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} ERROR {r['error']}")
-                continue
-            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['method']:<8} "
-                         f"{r['estep_s']:>9.4f} {r['fit_s']:>9.2f} {r['fit_esteps']:>8d} "
-                         f"{r['fit_status']:<12} {r['fit_loglik']:>14.4f} {r['peak_rss_mb']:>10.0f}")
     return "\n".join(lines)
 
 

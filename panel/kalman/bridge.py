@@ -27,6 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import fft, linalg
 
+from panel.kalman.chain import memoised
 from panel.kalman.dense import LOG2PI
 
 _CACHE: dict = {}
@@ -73,13 +74,7 @@ class EndBasis:
 
 def end_basis_for(s2: np.ndarray) -> EndBasis:
     """:class:`EndBasis` memoised on ``s2`` (stretches of equal length and scale share one)."""
-    key = np.asarray(s2, dtype=float).tobytes()
-    b = _CACHE.get(key)
-    if b is None:
-        if len(_CACHE) >= _CACHE_SIZE:
-            _CACHE.pop(next(iter(_CACHE)))
-        b = _CACHE[key] = EndBasis(s2)
-    return b
+    return memoised(_CACHE, _CACHE_SIZE, EndBasis, s2)
 
 
 @dataclass
