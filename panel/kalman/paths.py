@@ -71,6 +71,17 @@ def choose(Y, method: str, scale2=None, init=None) -> str:
     return min(costs, key=costs.get)
 
 
+def memory_estimate(Y) -> float:
+    """Rough peak bytes of a fit on ``Y`` (T, N): per-date N x N covariances on the dates the dense
+    steps run (kept by the filter and by up to four E-step results during SQUAREM: ~4 per date),
+    about 30 N x N work arrays (eigenproblems, M-step, reporting) and ~20 (T, N) arrays.  Errs high
+    on segment paths (counts every date before the final stretch as dense)."""
+    Y = np.asarray(Y, dtype=float)
+    T, N = Y.shape
+    dense_dates = min(final_stretch_start(Y), T)
+    return 8.0 * (4.0 * dense_dates * N * N + 30.0 * N * N + 20.0 * T * N)
+
+
 class Plan:
     """The E-step of one panel, prepared once: the path chosen and the parameter-free transforms
     of the data done (for the stretch path, the final stretch's basis and data coordinates).
