@@ -17,7 +17,7 @@ FORMATS = {
     "g17": lambda v: f"{v:.17g}",
     "e17": lambda v: f"{v:.17e}",
     "padded": lambda v: (repr(v) + "000") if "e" not in repr(v) and "." in repr(v) else repr(v),
-    "plus": lambda v: ("+" + repr(v)) if v >= 0 else repr(v),
+    "plus": lambda v: repr(v) if repr(v).startswith("-") else "+" + repr(v),  # -0.0 keeps its sign
 }
 
 
