@@ -1,9 +1,13 @@
 """Opening a store: location resolution, the one-writer lock, schema version checks.
 
 A store is a DuckDB file (default ``./riskprem.duckdb``) or any SQLAlchemy URL
-(``duckdb:///path``, ``postgresql://...``).  DuckDB lets ONE process open a file read-write; while it
-does, other processes can open it neither read-write nor read-only.  Several read-only processes may
-share a file when no writer holds it.
+(``duckdb:///path``, ``postgresql+psycopg://user@host/db``).  DuckDB lets ONE process open a file
+read-write; while it does, other processes can open it neither read-write nor read-only.  Several
+read-only processes may share a file when no writer holds it.
+
+A password in a URL is a secret: it is used to connect and never shown.  Every message and every
+fact about the store uses :func:`public_location`, and driver messages are passed through
+:func:`panel.store.errors.first_line` with the password masked.
 """
 
 from __future__ import annotations
@@ -13,12 +17,14 @@ import re
 import time
 from pathlib import Path
 
-from sqlalchemy import create_engine, event, text
-from sqlalchemy.engine import Connection, Engine, make_url
+from sqlalchemy import create_engine, event
+from sqlalchemy.engine import URL, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 from sqlalchemy.pool import StaticPool
 
-from panel.store.errors import StoreError
+from panel.store.errors import StoreError, first_line, url_secret
+from panel.store.handle import Store
+from panel.store.migrate import apply_migrations, current_version, head_version
 
 DEFAULT_LOCATION = "./riskprem.duckdb"
 ENV_VAR = "RISKPREM_STORE"
@@ -31,74 +37,25 @@ def resolve_location(option: str | None = None) -> str:
     return os.environ.get(ENV_VAR) or DEFAULT_LOCATION
 
 
-def _first_line(error: BaseException) -> str:
-    inner = getattr(error, "orig", None) or error
-    return (str(inner).strip().splitlines() or [type(inner).__name__])[0]
+_USERINFO = re.compile(r"://([^:/@]*):.*@")
 
 
-def engine_facts(conn: Connection) -> dict:
-    """DuckDB library version and the storage version of the attached file (DuckDB only)."""
-    if conn.dialect.name != "duckdb":
-        return {"server_version": ".".join(str(p) for p in (conn.dialect.server_version_info or ()))}
-    library = conn.execute(text("SELECT library_version FROM pragma_version()")).scalar_one()
-    tags = conn.execute(text("SELECT tags FROM duckdb_databases() WHERE database_name = current_database()")
-                        ).scalar_one_or_none()
-    storage = None
-    if isinstance(tags, dict):
-        storage = tags.get("storage_version")
-        storage = storage[0] if isinstance(storage, list) and storage else storage
-    return {"duckdb_library": library, "storage_version": storage}
+def _public_url(url: URL) -> str:
+    if isinstance(url.query.get("password"), str):
+        url = url.update_query_dict({"password": "***"})
+    return url.render_as_string(hide_password=True)
 
 
-class Store:
-    """An open store: the SQLAlchemy engine plus what was learnt when opening it.
-
-    Use as a context manager or call :meth:`close`; a read-write DuckDB store holds the file lock
-    until then.
-    """
-
-    def __init__(self, engine: Engine, *, display: str, path: Path | None, read_only: bool,
-                 schema_version: int):
-        self.engine = engine
-        self.display = display
-        self.path = path
-        self.read_only = read_only
-        self.schema_version = schema_version
-
-    @property
-    def is_duckdb(self) -> bool:
-        return self.engine.dialect.name == "duckdb"
-
-    def close(self) -> None:
-        self.engine.dispose()
-
-    def __enter__(self) -> "Store":
-        return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
-
-    def __repr__(self) -> str:
-        mode = "read-only" if self.read_only else "read-write"
-        return f"Store({self.display!r}, {mode}, schema {self.schema_version})"
-
-    def require_writable(self, action: str = "write") -> None:
-        if self.read_only:
-            raise StoreError(f"store {self.display} is open read-only; open it read-write to {action}")
-
-    def require_current(self) -> None:
-        from panel.store.migrate import head_version
-
-        head = head_version()
-        if self.schema_version < head:
-            raise StoreError(f"store {self.display} has schema version {self.schema_version}, this riskprem "
-                             f"uses {head}; upgrade it with `riskprem store upgrade` (back the file up first)")
-        if self.schema_version > head:
-            raise StoreError(self.newer_message(head))
-
-    def newer_message(self, head: int) -> str:
-        return (f"store {self.display} has schema version {self.schema_version}, newer than this riskprem "
-                f"knows ({head}); install a newer riskprem to use it")
+def public_location(location: str | os.PathLike) -> str:
+    """``location`` as it may be shown: a path unchanged, a URL with any password replaced by
+    ``***`` (also when the URL cannot be parsed)."""
+    text_ = str(location)
+    if "://" not in text_:
+        return text_
+    try:
+        return _public_url(make_url(text_))
+    except ArgumentError:
+        return _USERINFO.sub(r"://\1:***@", text_)
 
 
 def _url_of(location: str):
@@ -106,8 +63,8 @@ def _url_of(location: str):
         try:
             url = make_url(location)
         except ArgumentError:
-            raise StoreError(f"cannot read store URL {location!r}; give a file path or a URL like "
-                             "duckdb:///path/riskprem.duckdb") from None
+            raise StoreError(f"cannot read store URL {public_location(location)!r}; give a file path or a "
+                             "URL like duckdb:///path/riskprem.duckdb") from None
         return url, (Path(url.database).resolve() if url.drivername.startswith("duckdb")
                      and url.database and url.database != ":memory:" else None)
     path = Path(location).expanduser().resolve()
@@ -120,7 +77,7 @@ def _quiet_duckdb(dbapi_connection, _record) -> None:
 
 
 def _lock_message(display: str, error: BaseException, read_only: bool, waited: float) -> str:
-    pid = re.search(r"PID (\d+)", _first_line(error))
+    pid = re.search(r"PID (\d+)", first_line(error))
     holder = f"another process (PID {pid.group(1)})" if pid else "another process"
     if read_only:
         return (f"store {display} is being written by {holder} and DuckDB cannot read a file while "
@@ -130,6 +87,7 @@ def _lock_message(display: str, error: BaseException, read_only: bool, waited: f
 
 
 def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float) -> None:
+    secret = url_secret(engine.url)
     start = time.monotonic()
     delay = 0.05
     while True:
@@ -137,7 +95,7 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
             engine.connect().close()  # StaticPool keeps this one connection (and DuckDB's lock)
             return
         except DBAPIError as error:
-            line = _first_line(error)
+            line = first_line(error, secret)
             waited = time.monotonic() - start
             if "lock" in line.lower():
                 if waited + delay > lock_timeout:
@@ -150,7 +108,7 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
                                  "close it before opening it read-only or read-write") from None
             raise StoreError(f"cannot open store {display}: {line}") from None
         except (NoSuchModuleError, ImportError) as error:
-            raise StoreError(f"cannot open store {display}: {_first_line(error)}; install the driver "
+            raise StoreError(f"cannot open store {display}: {first_line(error, secret)}; install the driver "
                              "for that URL or use a DuckDB file") from None
 
 
@@ -163,10 +121,8 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
     :func:`panel.store.upgrade` first.  While another process writes a DuckDB store, opening retries
     with backoff for ``lock_timeout`` seconds, then raises :class:`StoreError`.
     """
-    from panel.store.migrate import apply_migrations, current_version, head_version
-
     url, path = _url_of(resolve_location(None if location is None else str(location)))
-    display = str(path) if path is not None else url.render_as_string(hide_password=True)
+    display = str(path) if path is not None else _public_url(url)
     kwargs: dict = {}
     if url.drivername.startswith("duckdb"):
         if path is not None:
@@ -180,8 +136,8 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
     try:
         engine = create_engine(url, **kwargs)
     except (ArgumentError, NoSuchModuleError, ImportError) as error:
-        raise StoreError(f"cannot use store location {display!r}: {_first_line(error)}; give a file path "
-                         "or a URL like duckdb:///path/riskprem.duckdb") from None
+        raise StoreError(f"cannot use store location {display!r}: {first_line(error, url_secret(url))}; "
+                         "give a file path or a URL like duckdb:///path/riskprem.duckdb") from None
     if engine.dialect.name == "duckdb":
         event.listen(engine, "connect", _quiet_duckdb)
     try:

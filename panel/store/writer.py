@@ -15,7 +15,7 @@ from sqlalchemy.exc import DBAPIError
 from panel.data import Panel, canonical_hash
 from panel.store import schema
 from panel.store._io import insert_frame
-from panel.store.connection import Store, _first_line
+from panel.store.handle import Store
 from panel.store.environment import backfill_key, run_environment, utc_now
 from panel.store.errors import StoreError
 
@@ -63,7 +63,7 @@ def write_dataset(store: Store, panel: Panel, name: str) -> str:
         with store.engine.begin() as conn:
             return insert_dataset(conn, panel, name)
     except DBAPIError as error:
-        raise StoreError(f"could not write dataset {name!r}, nothing was stored: {_first_line(error)}") from None
+        raise StoreError(f"could not write dataset {name!r}, nothing was stored: {store.error_line(error)}") from None
 
 
 def insert_dataset(conn: Connection, panel: Panel, name: str) -> str:
@@ -225,7 +225,7 @@ def write_run(store: Store, run: dict, tables: dict[str, pd.DataFrame] | None = 
         with store.engine.begin() as conn:
             return insert_run(conn, row, checked, native=native)
     except DBAPIError as error:
-        raise StoreError(f"could not write the run, nothing was stored: {_first_line(error)}") from None
+        raise StoreError(f"could not write the run, nothing was stored: {store.error_line(error)}") from None
 
 
 def from_fit(fit, **run) -> tuple[dict, dict[str, pd.DataFrame]]:
