@@ -12,6 +12,7 @@ fact about the store uses :func:`public_location`, and driver messages are passe
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import re
 import time
@@ -133,6 +134,13 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
                 raise StoreError(f"cannot create store {path}: folder {path.parent} does not exist")
         kwargs = {"poolclass": StaticPool,
                   "connect_args": {"read_only": bool(read_only)}}
+    elif url.drivername.startswith("postgresql"):
+        if url.drivername == "postgresql" and importlib.util.find_spec("psycopg") is not None:
+            url = url.set(drivername="postgresql+psycopg")   # the driver of riskprem[postgres]
+        if read_only:   # the server refuses writes in every transaction of a read-only store
+            options = " ".join(filter(None, [str(url.query.get("options") or ""),
+                                             "-c default_transaction_read_only=on"]))
+            url = url.update_query_dict({"options": options})
     try:
         engine = create_engine(url, **kwargs)
     except (ArgumentError, NoSuchModuleError, ImportError) as error:
