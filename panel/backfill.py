@@ -54,8 +54,8 @@ from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec, SpecError
 from panel.backfill_start import start_for_vintage, start_from_parameters  # noqa: F401 (re-exported)
 from panel.backfill_pools import BackfillError, default_workers, open_pool  # noqa: F401 (re-exported)
-from panel.store import (Store, backfill_key, find_run, from_fit, get_run, load_panel, resolve_dataset,
-                         run_environment, run_query, run_tables, write_run)
+from panel.store import (Store, backfill_key, find_run, from_fit, get_run, json_ready, load_panel,
+                         resolve_dataset, run_environment, run_query, run_tables, write_run)
 
 #: ``runs.kind`` of a backfill vintage.
 KIND = "backfill"
@@ -146,10 +146,6 @@ def parse_date(value, what: str) -> pd.Timestamp:
     return stamp
 
 
-def _json_ready(value):
-    return json.loads(json.dumps(value, default=str))
-
-
 def vintage_settings(fitted: PanelFit, dataset_hash: str, window) -> dict:
     """A vintage's run settings: ``fitted.settings()`` (spec, start, as_of) with the full dataset's
     hash and the window."""
@@ -161,7 +157,7 @@ def settings_key(dataset_hash: str, spec: ModelSpec | None = None, window="expan
     settings (what the store computes from a vintage's settings)."""
     settings = {"spec": (spec or ModelSpec()).to_dict(), "dataset_hash": dataset_hash,
                 "window": Window.parse(window).text}
-    return backfill_key(dataset_hash, _json_ready(settings))
+    return backfill_key(dataset_hash, json_ready(settings, "backfill settings"))
 
 
 # ---------------------------------------------------------------------------------------------

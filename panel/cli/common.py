@@ -18,7 +18,7 @@ import typer
 from panel.cli import output
 from panel.ingest import IngestError
 from panel.model.spec import SpecError
-from panel.store import StoreError, open_store, resolve_location
+from panel.store import StoreError, open_store, public_location, resolve_location
 
 #: Seconds a command waits for another process's write lock on the store before giving up.
 DEFAULT_LOCK_WAIT = 10.0
@@ -43,6 +43,11 @@ class State:
     @property
     def location(self) -> str:
         return resolve_location(self.store)
+
+    @property
+    def shown(self) -> str:
+        """The location as it may be printed: a URL's password masked."""
+        return public_location(self.location)
 
 
 def state(ctx: typer.Context | None) -> State:

@@ -156,6 +156,7 @@ def fit(
     """
     from panel.model.fit import fit as estimate
     from panel.reproduce import record_fit
+    from panel.store import json_ready
 
     st: State = state(ctx)
     if (data is None) == (file is None):
@@ -182,6 +183,7 @@ def fit(
     vintage = _vintage(panel, cutoff, f"dataset {dataset}")
     with user_errors():
         spec.resolve(len(vintage.assets), vintage.periods_per_year, len(vintage.dates), vintage.assets)
+        json_ready(spec.to_dict(), "model settings")   # storable settings (no NaN), checked before the fit
     if store_exists(st):
         with store_for(st, write=True):
             pass  # the store is writable now: a fit that cannot be stored is not started

@@ -44,7 +44,7 @@ _USERINFO = re.compile(r"://([^:/@]*):.*@")
 def _public_url(url: URL) -> str:
     if isinstance(url.query.get("password"), str):
         url = url.update_query_dict({"password": "***"})
-    return url.render_as_string(hide_password=True)
+    return url.render_as_string(hide_password=True).replace("password=%2A%2A%2A", "password=***")
 
 
 def public_location(location: str | os.PathLike) -> str:
