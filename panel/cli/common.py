@@ -72,10 +72,11 @@ def user_errors() -> Iterator[None]:
 
 
 @contextlib.contextmanager
-def store_for(st: State, write: bool = False):
-    """Open the store read-only (default) or read-write; errors become one line, exit 1."""
+def store_for(st: State, write: bool = False, hold: bool = True):
+    """Open the store read-only (default) or read-write; errors become one line, exit 1.
+    ``hold=False``: a DuckDB file is held only while each read or write runs (long commands)."""
     with user_errors():
-        store = open_store(st.location, read_only=not write, lock_timeout=st.lock_wait)
+        store = open_store(st.location, read_only=not write, lock_timeout=st.lock_wait, hold=hold)
     try:
         yield store
     finally:

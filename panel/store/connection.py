@@ -21,11 +21,11 @@ from pathlib import Path
 from sqlalchemy import create_engine, event
 from sqlalchemy.engine import URL, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
-from sqlalchemy.pool import StaticPool
+from sqlalchemy.pool import NullPool, StaticPool
 
 from panel.store.errors import StoreError, first_line, url_secret
 from panel.store.handle import Store
-from panel.store.migrate import apply_migrations, current_version, head_version
+from panel.store.migrate import apply_migrations, current_version, head_version, missing_write_privilege
 
 DEFAULT_LOCATION = "./riskprem.duckdb"
 ENV_VAR = "RISKPREM_STORE"
@@ -87,6 +87,28 @@ def _lock_message(display: str, error: BaseException, read_only: bool, waited: f
             "wait for it to finish (read-only commands work whenever no process is writing)")
 
 
+def _patient_connect(display: str, read_only: bool, lock_timeout: float):
+    """A ``do_connect`` hook that waits (with backoff, up to ``lock_timeout`` seconds) while another
+    process holds the DuckDB file, then raises :class:`StoreError`: every (re)opening of a store
+    that does not hold its file is as patient as the first."""
+    def do_connect(dialect, _record, cargs, cparams):
+        start = time.monotonic()
+        delay = 0.05
+        while True:
+            try:
+                return dialect.connect(*cargs, **cparams)
+            except dialect.loaded_dbapi.Error as error:
+                waited = time.monotonic() - start
+                if "lock" not in first_line(error).lower():
+                    raise
+                if waited + delay > lock_timeout:
+                    raise StoreError(_lock_message(display, error, read_only, waited)) from None
+                time.sleep(delay)
+                delay = min(delay * 2, 1.0)
+
+    return do_connect
+
+
 def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float) -> None:
     secret = url_secret(engine.url)
     start = time.monotonic()
@@ -114,13 +136,18 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
 
 
 def open_store(location: str | os.PathLike | None = None, *, read_only: bool = False,
-               lock_timeout: float = 10.0) -> Store:
+               lock_timeout: float = 10.0, hold: bool = True) -> Store:
     """Open (and, read-write, create if new) the store at ``location`` (see :func:`resolve_location`).
 
     A new or empty DuckDB file opened read-write gets the full schema.  An existing store must be a
     riskprem store no newer than this code; an older one opens, but reading or writing runs needs
     :func:`panel.store.upgrade` first.  While another process writes a DuckDB store, opening retries
     with backoff for ``lock_timeout`` seconds, then raises :class:`StoreError`.
+
+    ``hold=False`` (DuckDB files): keep the file open only while a read or a write transaction runs,
+    so other processes can read and write between them; each use waits up to ``lock_timeout``
+    seconds for the file like opening does.  A long backfill opens its store this way.  Database
+    servers need no such thing: they serve many readers and writers at once.
     """
     url, path = _url_of(resolve_location(None if location is None else str(location)))
     display = str(path) if path is not None else _public_url(url)
@@ -132,7 +159,7 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
                                  "store location")
             if not path.parent.is_dir():
                 raise StoreError(f"cannot create store {path}: folder {path.parent} does not exist")
-        kwargs = {"poolclass": StaticPool,
+        kwargs = {"poolclass": StaticPool if hold else NullPool,
                   "connect_args": {"read_only": bool(read_only)}}
     elif url.drivername.startswith("postgresql"):
         if url.drivername == "postgresql" and importlib.util.find_spec("psycopg") is not None:
@@ -148,19 +175,16 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
                          "give a file path or a URL like duckdb:///path/riskprem.duckdb") from None
     if engine.dialect.name == "duckdb":
         event.listen(engine, "connect", _quiet_duckdb)
+        if not hold:
+            event.listen(engine, "do_connect", _patient_connect(display, read_only, lock_timeout))
     try:
         _connect(engine, display, read_only, lock_timeout)
-        with engine.connect() as conn:
-            version = current_version(conn)
-        if version is None:
-            raise StoreError(f"{display} is not a riskprem store (it has tables but no schema_version); "
-                             "give another store location")
+        try:
+            version = _prepare(engine, display, read_only)
+        except DBAPIError as error:   # e.g. a database user without the privileges it needs
+            raise StoreError(f"cannot use store {display}: {first_line(error, url_secret(url))}; ask the "
+                             "store's owner for access (README: Team store)") from None
         head = head_version()
-        if version == 0:
-            if read_only:
-                raise StoreError(f"{display} is empty, not a riskprem store; write a dataset to create it")
-            apply_migrations(engine)
-            version = head
         store = Store(engine, display=display, path=path, read_only=read_only, schema_version=version)
         if version > head:
             raise StoreError(store.newer_message(head))
@@ -168,3 +192,28 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
     except BaseException:
         engine.dispose()
         raise
+
+
+def _prepare(engine: Engine, display: str, read_only: bool) -> int:
+    """The store's schema version after creating the schema in an empty database (read-write)."""
+    with engine.connect() as conn:
+        version = current_version(conn)
+    if version is None:
+        raise StoreError(f"{display} is not a riskprem store (it has tables but no schema_version); "
+                         "give another store location")
+    if version == 0:
+        if read_only and engine.dialect.name == "postgresql":   # tables without SELECT are invisible
+            raise StoreError(f"{display} has no riskprem tables this user can see; write a dataset to create "
+                             "the store, or ask the store's owner for the reader role (README: Team store)")
+        if read_only:
+            raise StoreError(f"{display} is empty, not a riskprem store; write a dataset to create it")
+        apply_migrations(engine)
+        version = head_version()
+    if not read_only:
+        with engine.connect() as conn:
+            missing = missing_write_privilege(conn)
+        if missing is not None:
+            user = engine.url.username or "this database user"
+            raise StoreError(f"{user} may not write store {display} (no privilege on {missing}); use "
+                             "read commands, or ask the store's owner for the writer role (README: Team store)")
+    return version

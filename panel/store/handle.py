@@ -16,7 +16,7 @@ class Store:
 
     ``display`` is the location as it may be shown (a file path, or the URL with its password
     masked).  Use as a context manager or call :meth:`close`; a read-write DuckDB store holds the file
-    lock until then.
+    lock until then (unless opened with ``hold=False``).
     """
 
     def __init__(self, engine: Engine, *, display: str, path: Path | None, read_only: bool,

@@ -27,7 +27,7 @@ from panel.store.handle import Store
 from panel.store.versions import Migration, head_version, migrations
 
 __all__ = ["Migration", "apply_migrations", "current_version", "engine_facts", "head_version", "live_tables",
-           "migrations", "schema_drift", "store_info", "upgrade"]
+           "migrations", "missing_write_privilege", "schema_drift", "store_info", "upgrade"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -77,6 +77,24 @@ def engine_facts(conn: Connection) -> dict:
         storage = tags.get("storage_version")
         storage = storage[0] if isinstance(storage, list) and storage else storage
     return {"duckdb_library": library, "storage_version": storage}
+
+
+#: Tables a writer inserts into (the others change only in migrations, which the owner runs).
+_WRITTEN = ("datasets", "dataset_names", "dataset_assets", "dataset_dates", "dataset_values", "runs",
+            "parameters", "estimates", "factor_paths", "em_trace", "diagnostics")
+
+
+def missing_write_privilege(conn: Connection) -> str | None:
+    """On PostgreSQL: the first table (or the run-id sequence) the connected user may not write,
+    or None; on DuckDB always None (the file lock is the only gate)."""
+    if conn.dialect.name != "postgresql":
+        return None
+    if not conn.execute(text("SELECT has_sequence_privilege('run_id_seq', 'USAGE')")).scalar_one():
+        return "sequence run_id_seq (USAGE)"
+    for name in _WRITTEN:
+        if not conn.execute(text("SELECT has_table_privilege(:t, 'INSERT')"), {"t": name}).scalar_one():
+            return f"table {name} (INSERT)"
+    return None
 
 
 _FAMILIES = {
