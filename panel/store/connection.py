@@ -39,6 +39,7 @@ def resolve_location(option: str | None = None) -> str:
 
 
 _USERINFO = re.compile(r"://([^:/@]*):.*@")
+_QUERY_PASSWORD = re.compile(r"([?&]password=)[^&]*")
 
 
 def _public_url(url: URL) -> str:
@@ -56,7 +57,7 @@ def public_location(location: str | os.PathLike) -> str:
     try:
         return _public_url(make_url(text_))
     except ArgumentError:
-        return _USERINFO.sub(r"://\1:***@", text_)
+        return _QUERY_PASSWORD.sub(r"\1***", _USERINFO.sub(r"://\1:***@", text_))
 
 
 def _url_of(location: str):
