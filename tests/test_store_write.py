@@ -247,3 +247,30 @@ def test_a_writer_killed_midway_leaves_no_partial_run(tmp_path):
         assert len(run_tables(reopened, kept)["estimates"]) == before["estimates"]
         again = write_run(reopened, run_record(digest, "2019-12-31"), result_tables(sleeves_panel()))
         assert again > kept
+
+
+@pytest.mark.parametrize("backend", ["postgresql"], indirect=True)
+def test_a_writer_killed_during_copy_leaves_no_partial_run_on_postgresql(backend):
+    location = backend.location("killed")
+    with open_store(location) as opened:
+        digest = write_dataset(opened, sleeves_panel(), "larkspur")
+        kept = write_run(opened, run_record(digest, "2019-06-30"), result_tables(sleeves_panel(), "2019-06-30"))
+        before = store_info(opened)["counts"]
+    proc = subprocess.Popen([sys.executable, "-c", KILLED_WRITER, location, "600000"], cwd=REPO,
+                            text=True, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+    assert proc.stdout.readline().strip() == "writing", proc.stderr.read()
+    server = backend.pg.conn
+    database = location.rsplit("/", 1)[1]
+    deadline = time.monotonic() + 60
+    copying = False
+    while not copying and proc.poll() is None and time.monotonic() < deadline:
+        copying = server.execute("SELECT count(*) FROM pg_stat_activity WHERE datname = %s AND query LIKE 'COPY%%'",
+                                 (database,)).fetchone()[0] > 0
+        time.sleep(0.01)
+    assert copying and proc.poll() is None, "the writer finished before it could be killed"
+    proc.send_signal(signal.SIGKILL)
+    proc.wait(timeout=30)
+    assert proc.stdout.read().strip() == ""                   # it never finished the write
+    with open_store(location) as reopened:
+        assert store_info(reopened)["counts"] == before
+        assert list(list_runs(reopened)["id"]) == [kept]
