@@ -132,7 +132,7 @@ class ModelOptions:
         if self.std_errors is not None:
             extra["std_errors"] = self.std_errors.value
         if self.time_budget is not None:
-            extra["time_budget"] = parse_number(str(self.time_budget), "--time-budget", "time budget")
+            extra["time_budget"] = self.time_budget   # a non-finite one is refused in one line later
         return ModelSpec(premium_factors=self.premium_factors,
                          return_shocks=None if self.return_shocks is None else self.return_shocks.value,
                          return_factors=self.return_factors, vol_scale=scale, fixed=fixed,
