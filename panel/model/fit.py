@@ -94,7 +94,7 @@ def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
         lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
         prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
         max_iter=spec.max_iter, time_budget=spec.time_budget,
-        accelerate=spec.acceleration != "none", progress=progress,
+        accelerate=spec.acceleration != "none", progress=progress, loglik_tol=spec.loglik_tol,
         **_quasi_newton_setup(prob, floor))
 
 
