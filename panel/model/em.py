@@ -143,8 +143,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
                     trace, elapsed)
             else:
                 p, e, obj, n, status, message = _active_set_finish(
-                    p, e, obj, n, estep, objective, score, mstep, packer, bounds, max_iter,
-                    remaining, trace, elapsed, loglik_tol)
+                    p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
+                    trace, elapsed, loglik_tol)
             break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
                      trace=tuple(trace))
@@ -277,8 +277,8 @@ class _Converged(Exception):
     """Raised from the L-BFGS-B callback when the active-set finish's stopping rule holds."""
 
 
-def _active_set_finish(p, e, obj, n, estep, objective, score, mstep, packer, bounds, max_iter,
-                       time_left, trace, elapsed, loglik_tol):
+def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
+                       trace, elapsed, loglik_tol):
     """L-BFGS-B with the Fisher-identity score on the variances not pinned at their floor.
 
     Active set: a variance at its floor whose score (d objective / d log variance, free from the
@@ -287,8 +287,8 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, mstep, packer, bou
     its projected gradient points outwards (restarting L-BFGS-B to drop it at once discards the
     curvature pairs: measured 1.6-5x the E-steps).  When the stopping rule holds, the scores of the
     variances at their floor are checked: a positive one (the objective increases away from the
-    floor) is released by an EM step from the best point, and the finish runs again with the others
-    pinned; otherwise the fit has converged.
+    floor) is released (raised to a trial level accepted only if the objective increases), and the
+    finish runs again with the others pinned; otherwise the fit has converged.
 
     Stops (converged) when the objective gained less than ``loglik_tol`` (log-likelihood units) over
     the last ``GAIN_WINDOW`` L-BFGS-B iterations and the projected gradient is below ``loglik_tol``
@@ -375,19 +375,36 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, mstep, packer, bou
             break
         if status != "converged":
             break
-        # release check: a pinned variance whose score is positive leaves its floor by an EM step
+        # release check: a variance at (or within a factor 2 of) its floor whose score is positive
+        # is raised to the median level of its free peers (in s, EM and L-BFGS-B would only creep
+        # away from the floor: both steps are proportional to its tiny s), halving towards the
+        # floor (in logs) until the objective increases
         co = _Coords(packer.pack(best["p"]), packer, bounds)
         g = score(best["e"], best["p"])
-        if not (co.at_floor(co.x0) & (g > 0)).any() or count["n"] >= max_iter:
+        near = co.floored & (co.x0 <= co.lower * np.sqrt(2.0))
+        release = near & (g > 0)
+        if not release.any() or count["n"] >= max_iter:
             break
-        p1 = mstep(best["e"], best["p"])
-        e1 = estep(p1)
-        o1 = objective(e1, p1)
-        count["n"] += 1
-        if not o1 >= best["obj"]:
+        theta = packer.pack(best["p"])
+        peers = theta[co.floored & ~near]
+        target = np.median(peers) if peers.size else theta[release] + 2.0 * co.a[release]
+        raised = False
+        for frac in (1.0, 0.5, 0.25, 0.125):
+            if count["n"] >= max_iter:
+                break
+            trial = theta.copy()
+            trial[release] = theta[release] + frac * np.maximum(target - theta[release], 0.0)
+            p1 = packer.unpack(trial, best["p"])
+            e1 = estep(p1)
+            o1 = objective(e1, p1)
+            count["n"] += 1
+            if o1 > best["obj"]:
+                best.update(p=p1, e=e1, obj=o1)
+                trace.append((count["n"], o1, e1.loglik, elapsed(), "release"))
+                raised = True
+                break
+        if not raised:
             break
-        best.update(p=p1, e=e1, obj=o1)
-        trace.append((count["n"], o1, e1.loglik, elapsed(), "em"))
     if status == "converged":
         message = f"converged after {count['n']} E-steps (quasi-Newton finish with active set)"
     return best["p"], best["e"], best["obj"], count["n"], status, message

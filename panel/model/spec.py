@@ -267,6 +267,9 @@ class ModelSpec:
             raise SpecError(f"starts must be a whole number from 1 to 100, got {self.starts!r}")
         if self.max_iter < 1 or not self.tol > 0:
             raise SpecError("max_iter must be >= 1 and tol > 0")
+        if self.loglik_tol is not None and not (self.loglik_tol > 0 and math.isfinite(self.loglik_tol)):
+            raise SpecError(f"loglik_tol must be a positive number of log-likelihood units (or None for the "
+                            f"legacy finish), got {self.loglik_tol}")
         zeros = 0 if fixed_q is None else sum(v == 0 for v in fixed_q)
         if zeros and k and zeros > k:
             raise SpecError(f"own_premium_vol is fixed at 0 for {zeros} assets but there are only {k} common "
