@@ -164,6 +164,12 @@ def test_economic_discipline_on_twelve_industries():
     data = panel.Panel.from_frame(pd.DataFrame({c: (d[c] - d["RF"]).to_numpy() for c in cols}, index=idx))
     ml = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never"))
     assert ml.status == "boundary" and "own premium innovation variance at zero" in ml.message
+    # Source: scipy.optimize's L-BFGS-B run to its own 1e-10 projected-gradient tolerance (the legacy
+    # finish): the active-set finish stopping at loglik_tol reaches its optimum (measured: 7e-7
+    # log-likelihood units higher) in fewer E-steps (measured 219 against 313).
+    legacy = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never", loglik_tol=None))
+    assert ml.loglik >= legacy.loglik - 1e-6 * abs(legacy.loglik)
+    assert ml.n_iter < legacy.n_iter
     # premium volatility in % a year (DESIGN.md section 5): loadings x 12^1.5, own part sqrt(q x 12^3)
     assert np.median(np.abs(units.premium_loading(ml.params.Lambda, 12))) > 0.10   # > 10 points a year
     assert (units.premium_vol(ml.params.q, 12) < 0.0005).sum() >= 3                # pile-up at zero

@@ -66,6 +66,8 @@ def choose(Y, method: str, scale2=None, init=None) -> str:
         return "stretch"
     if method != "auto":
         return method
+    if final_stretch_start(np.asarray(Y, dtype=float)) == 0:
+        return "stretch"       # balanced: one spectral stretch, the best measured and the most tested
     varies = scale2 is not None and not np.all(np.asarray(scale2) == np.asarray(scale2)[0])
     costs = {m: estimated_cost(Y, m, varies, init) for m in ("dense", "stretch", "segments")}
     return min(costs, key=costs.get)

@@ -30,6 +30,13 @@ NOISE = 1e-11
 #: curvature on them sooner (measured on the benchmark panels: 1e-5 took 1.3-2.2x the E-steps of
 #: 1e-4 to reach the same optimum; 1e-3 once ended in a worse local optimum).
 HANDOVER = 1e-4
+#: L-BFGS-B iterations over which the gain must stay below ``loglik_tol`` (active-set finish).
+GAIN_WINDOW = 3
+#: Rounds of the active-set finish (each after a pinned variance was released).
+MAX_ROUNDS = 50
+#: L-BFGS-B correction pairs in the active-set finish: with 100-400 free parameters of very
+#: different curvature, 100 pairs took 0.6-0.9x the E-steps of 20 on the benchmark panels.
+MAXCOR = 100
 
 
 @dataclass(frozen=True)
@@ -45,7 +52,8 @@ class EMOutcome:
 
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
-           bounds=None, extrapolate: bool = True, project=None, progress=None) -> EMOutcome:
+           bounds=None, extrapolate: bool = True, project=None, progress=None,
+           loglik_tol: float | None = None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
@@ -55,6 +63,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     onto a constraint that is not a box (the M-step's own projection), so SQUAREM can run there
     too.  ``max_iter`` bounds the number of E-steps.
     ``progress(n_estep, objective)`` is called after every accepted step.
+    ``loglik_tol`` (log-likelihood units) selects the active-set finish and its stopping rule
+    (:func:`_active_set_finish`); None is the legacy finish (:func:`_quasi_newton`).
     """
     accelerate = accelerate and extrapolate
     lo = hi = None
@@ -127,9 +137,14 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             break
         if score is not None and rel < HANDOVER:
             remaining = None if time_budget is None else time_budget - elapsed()
-            p, e, obj, n, status, message = _quasi_newton(
-                p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
-                trace, elapsed)
+            if loglik_tol is None:
+                p, e, obj, n, status, message = _quasi_newton(
+                    p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
+                    trace, elapsed)
+            else:
+                p, e, obj, n, status, message = _active_set_finish(
+                    p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
+                    trace, elapsed, loglik_tol)
             break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
                      trace=tuple(trace))
@@ -155,6 +170,7 @@ class _OutOfTime(Exception):
 def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
                   trace, elapsed):
     """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated.
+    The legacy finish (``ModelSpec.loglik_tol=None``, runs stored before it existed).
 
     Converged means L-BFGS-B's own test passed: the projected gradient of the objective (scaled
     by its magnitude) below 1e-10, with variances at their floor counting as on a bound.
@@ -164,28 +180,7 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
     best = {"p": p, "e": e, "obj": obj}
     count = {"n": n}
     t_start = elapsed()
-    theta0 = packer.pack(p)
-    # The optimiser works on x: raw entries (loadings) scaled by their magnitude, and log entries
-    # turned back into standard deviations s = exp(theta / a) scaled by their start value.  In logs
-    # a variance heading for zero is an endless flat road; in s it reaches its bound in a few steps.
-    a = packer.log_power()
-    logs = a > 0
-    d = np.ones(theta0.size)
-    mag = np.abs(theta0[~logs])
-    if (~logs).any():
-        d[~logs] = np.maximum(mag, np.median(mag[mag > 0]) if (mag > 0).any() else 1.0)
-    d[logs] = np.exp(theta0[logs] / a[logs])
-
-    def to_theta(x):
-        theta = x * d
-        theta[logs] = a[logs] * np.log(theta[logs])
-        return theta
-
-    def dtheta_dx(x):
-        out = d.copy()
-        out[logs] = a[logs] / x[logs]
-        return out
-
+    co = _Coords(packer.pack(p), packer, bounds)
     scale = max(1.0, abs(obj))
 
     def f(x):
@@ -195,7 +190,7 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
             raise _OutOfTime("time_budget")
         count["n"] += 1
         try:
-            pp = packer.unpack(to_theta(x), p)
+            pp = packer.unpack(co.theta(x), p)
             ee = estep(pp)
             oo = objective(ee, pp)
             grad = score(ee, pp)
@@ -206,23 +201,10 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
         if oo > best["obj"]:
             best.update(p=pp, e=ee, obj=oo)
             trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
-        return -oo / scale, -grad * dtheta_dx(x) / scale
+        return -oo / scale, -grad * co.dtheta_dx(x) / scale
 
-    xbounds = []
-    for j, (lo, hi) in enumerate(bounds if bounds is not None else [(None, None)] * theta0.size):
-        if logs[j]:
-            lo = np.exp(lo / a[j]) / d[j] if lo is not None else 1e-12
-            hi = np.exp(hi / a[j]) / d[j] if hi is not None else None
-        else:
-            lo = None if lo is None else lo / d[j]
-            hi = None if hi is None else hi / d[j]
-        xbounds.append((lo, hi))
-    x0 = theta0 / d
-    x0[logs] = 1.0
     try:
-        res = optimize.minimize(f, np.clip(x0, [b[0] if b[0] is not None else -np.inf for b in xbounds],
-                                           [b[1] if b[1] is not None else np.inf for b in xbounds]),
-                                jac=True, method="L-BFGS-B", bounds=xbounds,
+        res = optimize.minimize(f, co.x0, jac=True, method="L-BFGS-B", bounds=co.xbounds,
                                 options={"maxfun": max(1, max_iter - n), "ftol": 1e-15, "gtol": 1e-10,
                                          "maxcor": 20})
         if res.success:
@@ -237,4 +219,192 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
         status = str(stop)
         message = (f"stopped after {count['n']} E-steps without meeting the tolerance"
                    if status == "max_iter" else "stopped by the time budget")
+    return best["p"], best["e"], best["obj"], count["n"], status, message
+
+
+class _Coords:
+    """The quasi-Newton finish's coordinates ``x`` of the packed vector ``theta``.
+
+    Raw entries (loadings) are scaled by their magnitude, and log entries turned back into standard
+    deviations ``s = exp(theta / a)`` scaled by their start value.  In logs a variance heading for
+    zero is an endless flat road; in ``s`` it reaches its bound in a few steps.  A unit change of
+    any ``x`` is thus a change of the parameter by about its own size.
+    """
+
+    def __init__(self, theta0: np.ndarray, packer: Packer, bounds):
+        a = packer.log_power()
+        logs = a > 0
+        d = np.ones(theta0.size)
+        mag = np.abs(theta0[~logs])
+        if (~logs).any():
+            d[~logs] = np.maximum(mag, np.median(mag[mag > 0]) if (mag > 0).any() else 1.0)
+        d[logs] = np.exp(theta0[logs] / a[logs])
+        self.a, self.logs, self.d = a, logs, d
+        xbounds = []
+        for j, (lo, hi) in enumerate(bounds if bounds is not None else [(None, None)] * theta0.size):
+            if logs[j]:
+                lo = np.exp(lo / a[j]) / d[j] if lo is not None else 1e-12
+                hi = np.exp(hi / a[j]) / d[j] if hi is not None else None
+            else:
+                lo = None if lo is None else lo / d[j]
+                hi = None if hi is None else hi / d[j]
+            xbounds.append((lo, hi))
+        self.xbounds = xbounds
+        self.floored = logs & np.array([b[0] is not None for b in bounds]) if bounds is not None \
+            else np.zeros(theta0.size, bool)
+        self.lower = np.array([-np.inf if b[0] is None else b[0] for b in xbounds])
+        self.upper = np.array([np.inf if b[1] is None else b[1] for b in xbounds])
+        x0 = theta0 / d
+        x0[logs] = 1.0
+        self.x0 = np.clip(x0, self.lower, self.upper)
+
+    def theta(self, x: np.ndarray) -> np.ndarray:
+        theta = x * self.d
+        theta[self.logs] = self.a[self.logs] * np.log(theta[self.logs])
+        return theta
+
+    def dtheta_dx(self, x: np.ndarray) -> np.ndarray:
+        out = self.d.copy()
+        out[self.logs] = self.a[self.logs] / x[self.logs]
+        return out
+
+    def at_floor(self, x: np.ndarray) -> np.ndarray:
+        """Log entries (variances, log-Cholesky diagonals) at their finite lower bound."""
+        return self.floored & (x <= self.lower * (1 + 1e-12))
+
+
+class _Converged(Exception):
+    """Raised from the L-BFGS-B callback when the active-set finish's stopping rule holds."""
+
+
+def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
+                       trace, elapsed, loglik_tol):
+    """L-BFGS-B with the Fisher-identity score on the variances not pinned at their floor.
+
+    Active set: a variance at its floor whose score (d objective / d log variance, free from the
+    E-step by Fisher's identity) is not positive is pinned there and dropped from the free vector.
+    One that reaches its floor during a run is held there by L-BFGS-B's own bound handling while
+    its projected gradient points outwards (restarting L-BFGS-B to drop it at once discards the
+    curvature pairs: measured 1.6-5x the E-steps).  When the stopping rule holds, the scores of the
+    variances at their floor are checked: a positive one (the objective increases away from the
+    floor) is released (raised to a trial level accepted only if the objective increases), and the
+    finish runs again with the others pinned; otherwise the fit has converged.
+
+    Stops (converged) when the objective gained less than ``loglik_tol`` (log-likelihood units) over
+    the last ``GAIN_WINDOW`` L-BFGS-B iterations and the projected gradient is below ``loglik_tol``
+    per unit of each free coordinate (a change of the parameter by its own size: first order, no
+    such change gains ``loglik_tol``).  The gradient test keeps flat problems honest: on the Nile
+    data (100 dates) the gain test alone stopped with the variances 2e-5 (relative) off statsmodels'
+    optimum; with it, 4e-6.  A looser gradient test (sqrt(loglik_tol)) took 0.75-0.9x the E-steps.
+    """
+    from scipy import optimize
+
+    best = {"p": p, "e": e, "obj": obj}
+    count = {"n": n}
+    t_start = elapsed()
+    scale = max(1.0, abs(obj))
+    status = message = None
+    for _ in range(MAX_ROUNDS):
+        co = _Coords(packer.pack(best["p"]), packer, bounds)
+        like = best["p"]
+        g0 = score(best["e"], best["p"])
+        pinned = co.at_floor(co.x0) & (g0 <= 0)
+        free = ~pinned
+        x_full = co.x0.copy()
+        last = {}
+
+        def full(xs):
+            x = x_full.copy()
+            x[free] = xs
+            return x
+
+        def f(xs):
+            if count["n"] >= max_iter:
+                raise _OutOfTime("max_iter")
+            if time_left is not None and elapsed() - t_start > time_left:
+                raise _OutOfTime("time_budget")
+            count["n"] += 1
+            x = full(xs)
+            try:
+                pp = packer.unpack(co.theta(x), like)
+                ee = estep(pp)
+                oo = objective(ee, pp)
+                grad = score(ee, pp) * co.dtheta_dx(x)
+            except (np.linalg.LinAlgError, FloatingPointError):
+                # a trial point whose covariance is not numerically positive definite: worse than
+                # anything seen, so the line search backs off
+                return -best["obj"] / scale + 1.0, np.zeros_like(xs)
+            if oo > best["obj"]:
+                best.update(p=pp, e=ee, obj=oo)
+                trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
+            last.update(x=xs.copy(), grad=grad[free])
+            return -oo / scale, -grad[free] / scale
+
+        history = [best["obj"]]
+        lower, upper = co.lower[free], co.upper[free]
+
+        def callback(xs, *args):
+            history.append(best["obj"])
+            if len(history) > GAIN_WINDOW and history[-1] - history[-1 - GAIN_WINDOW] < loglik_tol \
+                    and "x" in last and np.array_equal(last["x"], xs):
+                g = last["grad"]
+                pg = np.where(((xs <= lower) & (g < 0)) | ((xs >= upper) & (g > 0)), 0.0, g)
+                if np.max(np.abs(pg), initial=0.0) < loglik_tol:
+                    raise _Converged
+
+        try:
+            res = optimize.minimize(f, co.x0[free], jac=True, method="L-BFGS-B",
+                                    bounds=[co.xbounds[j] for j in np.flatnonzero(free)],
+                                    callback=callback,
+                                    options={"maxfun": max(1, max_iter - count["n"]), "ftol": 0.0,
+                                             "gtol": 1e-10, "maxcor": MAXCOR})
+            if res.success:
+                status, message = "converged", "quasi-newton"
+            elif res.status == 1:       # L-BFGS-B ran out of function evaluations
+                status, message = "max_iter", f"quasi-Newton finish stopped: {res.message}"
+            else:                       # e.g. its line search found no increase: not a budget stop
+                status = "stalled"
+                message = (f"quasi-Newton finish stopped after {count['n']} E-steps without meeting "
+                           f"its tolerance ({res.message.strip(': ')}); result kept at the best point")
+        except _Converged:
+            status, message = "converged", "quasi-newton"
+        except _OutOfTime as stop:
+            status = str(stop)
+            message = (f"stopped after {count['n']} E-steps without meeting the tolerance"
+                       if status == "max_iter" else "stopped by the time budget")
+            break
+        if status != "converged":
+            break
+        # release check: a variance at (or within a factor 2 of) its floor whose score is positive
+        # is raised to the median level of its free peers (in s, EM and L-BFGS-B would only creep
+        # away from the floor: both steps are proportional to its tiny s), halving towards the
+        # floor (in logs) until the objective increases
+        co = _Coords(packer.pack(best["p"]), packer, bounds)
+        g = score(best["e"], best["p"])
+        near = co.floored & (co.x0 <= co.lower * np.sqrt(2.0))
+        release = near & (g > 0)
+        if not release.any() or count["n"] >= max_iter:
+            break
+        theta = packer.pack(best["p"])
+        peers = theta[co.floored & ~near]
+        target = np.median(peers) if peers.size else theta[release] + 2.0 * co.a[release]
+        raised = False
+        for frac in (1.0, 0.5, 0.25, 0.125):
+            if count["n"] >= max_iter:
+                break
+            trial = theta.copy()
+            trial[release] = theta[release] + frac * np.maximum(target - theta[release], 0.0)
+            p1 = packer.unpack(trial, best["p"])
+            e1 = estep(p1)
+            o1 = objective(e1, p1)
+            count["n"] += 1
+            if o1 > best["obj"]:
+                best.update(p=p1, e=e1, obj=o1)
+                trace.append((count["n"], o1, e1.loglik, elapsed(), "release"))
+                raised = True
+                break
+        if not raised:
+            break
+    if status == "converged":
+        message = f"converged after {count['n']} E-steps (quasi-Newton finish with active set)"
     return best["p"], best["e"], best["obj"], count["n"], status, message

@@ -67,6 +67,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
         outcome = max(outcomes, key=lambda o: o.objective)   # the first of equals: the default start
         p, status, message, n_iter = outcome.params, outcome.status, outcome.message, outcome.n_estep
         objective, trace, loglik = outcome.objective, outcome.trace, outcome.estep.loglik
+        e = outcome.estep
         if spec.starts > 1:
             reached = sum(o.objective >= objective - SAME_OPTIMUM for o in outcomes)
             message += (f"; best of {spec.starts} starts, {reached} reached it (within {SAME_OPTIMUM:g} "
@@ -76,8 +77,14 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     want_se = spec.std_errors == "always" or (spec.std_errors == "auto" and n_free <= AUTO_SE_LIMIT)
     if n_free and want_se:
         q_bound, psi_bound, _ = _at_bounds(p, rs, floor)
+        forward = {}
+        if spec.loglik_tol is not None:     # the score at the optimum is free: forward differences
+            forward = {"base": ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior,
+                                                                prob.h_prior),
+                       "rel_step": inference.FORWARD_STEP}
         se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure,
-                                                at_bound=prob.packer.packed_variances(q_bound, psi_bound))
+                                                at_bound=prob.packer.packed_variances(q_bound, psi_bound),
+                                                **forward)
     elif n_free and spec.std_errors == "auto":
         se_note = f"standard errors skipped ({n_free} free parameters > {AUTO_SE_LIMIT}; std_errors='always' forces them)"
     if se_note:
@@ -94,7 +101,7 @@ def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
         lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),
         prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
         max_iter=spec.max_iter, time_budget=spec.time_budget,
-        accelerate=spec.acceleration != "none", progress=progress,
+        accelerate=spec.acceleration != "none", progress=progress, loglik_tol=spec.loglik_tol,
         **_quasi_newton_setup(prob, floor))
 
 

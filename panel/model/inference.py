@@ -1,8 +1,10 @@
 """Inference after the fit: observed information, parameter standard errors, Ljung-Box.
 
 Standard errors: the observed information is minus the derivative of the score, where the score
-comes for free from each E-step by Fisher's identity (Louis 1982); it is differentiated by central
-differences (two E-steps per free parameter).  Standard errors of reported quantities (variances,
+comes for free from each E-step by Fisher's identity (Louis 1982); it is differentiated by forward
+differences from the score at the optimum, which the fit's last E-step gives: one E-step per free
+parameter (fits with the legacy finish, ``loglik_tol=None``, keep central differences, two per
+parameter).  Forward and central differences agree to about 5e-6 relative (:data:`FORWARD_STEP`).  Standard errors of reported quantities (variances,
 covariances) follow by the delta method through the packed parametrisation.
 """
 
@@ -14,20 +16,36 @@ from scipy import stats
 from panel.model.params import Packer, Params
 
 
+#: Relative step of forward differences: their error is O(step) (truncation) plus the score's
+#: rounding over the step.  Measured against central differences at 1e-4 (error O(1e-8)) on the
+#: Nile data, four Fama-French industries (k = 1, factor H) and a simulated 8-asset panel: 3.5e-4
+#: relative at 1e-4, 4e-6 at 1e-6, 2e-5 at 1e-8 (rounding); 1e-6 is the sweet spot.
+FORWARD_STEP = 1e-6
+
+
 def _steps(theta: np.ndarray, scale: np.ndarray, rel_step: float) -> np.ndarray:
     """Differencing steps relative to each parameter's own size (its value or its natural scale):
     an absolute step would be as large as a small loading itself."""
     return rel_step * np.maximum(np.abs(theta), scale)
 
 
-def observed_information(theta: np.ndarray, score, scale: np.ndarray, rel_step: float = 1e-4) -> np.ndarray:
-    """``-d score / d theta`` by central differences; ``score(theta) -> (p,)``, ``scale`` (p,) the
-    natural size of each entry (:meth:`Packer.step_scale`)."""
+def observed_information(theta: np.ndarray, score, scale: np.ndarray, rel_step: float = 1e-4,
+                         base: np.ndarray | None = None) -> np.ndarray:
+    """``-d score / d theta``; ``score(theta) -> (p,)``, ``scale`` (p,) the natural size of each
+    entry (:meth:`Packer.step_scale`).
+
+    Without ``base``: central differences, two score evaluations (E-steps) per entry.  With
+    ``base`` = the score at ``theta`` (which the fit's last E-step gives for free): forward
+    differences, one E-step per entry, at the step ``rel_step`` that suits them (:data:`FORWARD_STEP`)."""
     p = theta.size
     info = np.empty((p, p))
     for j, h in enumerate(_steps(theta, scale, rel_step)):
-        up, dn = theta.copy(), theta.copy()
+        up = theta.copy()
         up[j] += h
+        if base is not None:
+            info[:, j] = -(score(up) - base) / h
+            continue
+        dn = theta.copy()
         dn[j] -= h
         info[:, j] = -(score(up) - score(dn)) / (2.0 * h)
     return 0.5 * (info + info.T)
@@ -73,8 +91,11 @@ def parameter_rows(assets, k: int, r: int, structure: str) -> list[tuple[str, st
     return rows
 
 
-def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=None):
-    """(reported SEs or None, message).  ``score(theta)`` evaluates the Fisher-identity score.
+def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=None, base=None,
+                    rel_step: float = 1e-4):
+    """(reported SEs or None, message).  ``score(theta)`` evaluates the Fisher-identity score;
+    ``base`` (packed, optional) is the score at ``p``: then the information is differenced forwards
+    (:func:`observed_information`), one E-step per free parameter instead of two.
 
     ``at_bound`` (packed mask) marks parameters sitting at a bound: the usual asymptotics do not
     hold there, so they are held fixed (zero variance) for the others' information and their own
@@ -90,7 +111,8 @@ def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=N
         full[inner] = sub
         return score(full)[inner]
 
-    info = observed_information(theta[inner], inner_score, scale[inner])
+    info = observed_information(theta[inner], inner_score, scale[inner], rel_step,
+                                None if base is None else np.asarray(base)[inner])
     try:
         cov_inner = np.linalg.inv(info)
     except np.linalg.LinAlgError:

@@ -118,8 +118,20 @@ class ModelSpec:
         Stop when the relative change of the objective per accepted step is below ``tol`` ...
     param_tol : float
         ... and the largest parameter change (transformed scale) is below ``param_tol``.  (With the
-        quasi-Newton finish, EM hands over once its relative progress per step falls below 1e-5;
-        the fit has then converged when L-BFGS-B's projected-gradient test passes.)
+        quasi-Newton finish, EM hands over once its relative progress per step falls below 1e-4;
+        the fit has then converged by ``loglik_tol``.)
+    loglik_tol : float or None
+        Stopping rule of the quasi-Newton finish, in log-likelihood units: converged when the
+        objective gained less than ``loglik_tol`` over the last 3 quasi-Newton iterations and no
+        free parameter's projected gradient exceeds ``loglik_tol`` per change of the parameter by
+        its own size.  Variances at their floor are pinned there (an active set) and released only
+        when their score says the objective increases away from the floor.  The default 1e-4 was
+        chosen by measurement (simulated panels N=30-100, T=600, and the Fama-French 12
+        industries): final log-likelihoods within 1e-10 relative of L-BFGS-B run to its own
+        1e-10 gradient tolerance, with 0.6-0.9x its E-steps.  None is the legacy finish (L-BFGS-B
+        to its own tolerance, no active set, standard errors by central differences):
+        :meth:`from_dict` reads settings without the key (runs stored before it existed) as None,
+        so they reproduce exactly.
     max_iter : int
         Maximum EM iterations (E-steps).
     time_budget : float or None
@@ -161,6 +173,7 @@ class ModelSpec:
     method: str = "auto"
     premium_vol_convention: str = units.YEARLY_CHANGE
     starts: int = 1
+    loglik_tol: float | None = 1e-4
 
     def __post_init__(self):
         object.__setattr__(self, "fixed", _freeze(self.fixed))
@@ -183,6 +196,8 @@ class ModelSpec:
             raise SpecError(f"unknown model settings {sorted(unknown)}; remove them")
         # Settings stored before the convention was recorded used the legacy one.
         data.setdefault("premium_vol_convention", units.LEGACY)
+        # ... and the legacy quasi-Newton finish (no active set, L-BFGS-B's own tolerance).
+        data.setdefault("loglik_tol", None)
         for key, kind in (("premium_prior", Prior), ("return_prior", Prior),
                           ("initial_premium", InitialPremium), ("vol_scale", VolScale)):
             if data.get(key) is not None and not isinstance(data[key], kind):
@@ -248,6 +263,9 @@ class ModelSpec:
             raise SpecError(f"starts must be a whole number from 1 to 100, got {self.starts!r}")
         if self.max_iter < 1 or not self.tol > 0:
             raise SpecError("max_iter must be >= 1 and tol > 0")
+        if self.loglik_tol is not None and not (self.loglik_tol > 0 and math.isfinite(self.loglik_tol)):
+            raise SpecError(f"loglik_tol must be a positive number of log-likelihood units (or None for the "
+                            f"legacy finish), got {self.loglik_tol}")
         zeros = 0 if fixed_q is None else sum(v == 0 for v in fixed_q)
         if zeros and k and zeros > k:
             raise SpecError(f"own_premium_vol is fixed at 0 for {zeros} assets but there are only {k} common "
