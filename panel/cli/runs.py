@@ -8,7 +8,6 @@ from enum import Enum
 from pathlib import Path
 from typing import Annotated
 
-import pandas as pd
 import typer
 
 from panel import units
@@ -82,6 +81,8 @@ def runs(ctx: typer.Context,
                                                   show_default=False)] = None,
          as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
     """List the stored runs (vintages), oldest first."""
+    import pandas as pd
+
     from panel.store import list_runs
 
     st = state(ctx)
@@ -109,6 +110,8 @@ def runs(ctx: typer.Context,
 
 def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     """One run: its record, model settings, per-asset parameters (annualised) and latest premia."""
+    import pandas as pd
+
     from panel.vintages.reproduce import run_inputs, stored_params
     from panel.store import run_tables
 
@@ -183,6 +186,8 @@ def estimates(
     as_json: JsonFlag = False, as_csv: CsvFlag = False,
 ) -> None:
     """A run's premium estimates per asset and date (annualised %, with 90% bands)."""
+    import pandas as pd
+
     from panel.vintages.reproduce import run_inputs
     from panel.store import run_tables
 
@@ -284,6 +289,8 @@ def cross_section(
 
 def _param_summary(frame: pd.DataFrame, side: str, ppy: int) -> dict[str, dict]:
     """Per asset, from parameter_changes rows: loading(s), own premium vol, return vol (annualised)."""
+    import pandas as pd
+
     out: dict[str, dict] = {}
     for r in frame.itertuples(index=False):
         value = getattr(r, f"value_{side}")
@@ -306,6 +313,8 @@ def diff(ctx: typer.Context,
          run_b: Annotated[int, typer.Argument(help="Second run id.", show_default=False)],
          as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
     """Two runs side by side: fit statistics, settings that differ, latest premia and parameters."""
+    import pandas as pd
+
     from panel.vintages.reproduce import run_inputs
     from panel.store import run_query, run_tables
 
@@ -450,6 +459,8 @@ def plot(
     as_json: JsonFlag = False,
 ) -> None:
     """Draw a PNG chart of a run (annualised %, 90% bands, as-of date in the title)."""
+    import pandas as pd
+
     from panel import plots
     from panel.vintages.reproduce import evaluated_run, run_inputs, vintage_history
     from panel.store import run_tables
