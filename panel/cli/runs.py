@@ -175,6 +175,16 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     output.caution()
 
 
+def _run_ppy(run: dict, layout: dict) -> int:
+    """Periods a year of a stored run: its spec's, else its dataset's."""
+    spec = (run.get("settings") or {}).get("spec") or {}
+    return int(spec.get("periods_per_year") or layout["periods_per_year"])
+
+
+#: Dates the estimates table shows by default (machine output gives all unless --last is given).
+TABLE_DATES = 12
+
+
 def estimates(
     ctx: typer.Context,
     run_id: RunArg,
@@ -182,53 +192,62 @@ def estimates(
                                                     show_default=False)] = None,
     kind: Annotated[KindOrBoth, typer.Option("--kind", help="filtered (real-time), smoothed (revised) "
                                              "or both.")] = KindOrBoth.both,
-    last: Annotated[int, typer.Option("--last", min=0, help="Only the last N dates (0 = all).")] = 12,
+    last: Annotated[int | None, typer.Option("--last", min=0, help=f"Only the last N dates (0 = all). "
+                                             f"Default: {TABLE_DATES} in the table, all with --csv or "
+                                             "--json.", show_default=False)] = None,
     as_json: JsonFlag = False, as_csv: CsvFlag = False,
 ) -> None:
-    """A run's premium estimates per asset and date (annualised %, with 90% bands)."""
-    import pandas as pd
+    """A run's premium estimates per asset and date (annualised %, with 90% bands).
 
-    from panel.vintages.reproduce import run_inputs
-    from panel.store import run_tables
+    The table shows the last 12 dates unless --last says otherwise; --csv and --json give every date
+    unless --last is given, and say on stderr when rows were left out.
+    """
+    from panel.store import dataset_layout, get_run, run_estimates
 
     st = state(ctx)
-    with store_for(st) as store, user_errors():
-        inputs = run_inputs(store, run_id)
-        est = run_tables(store, run_id)["estimates"]
-    ppy, assets = _ppy(inputs), list(inputs.panel.assets)
-    unknown = [a for a in asset or () if a not in assets]
-    if unknown:
-        fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(assets)}")
-    chosen = list(asset) if asset else assets
-    est = est.assign(date=pd.to_datetime(est["date"]))
-    est = est[est["asset"].isin(chosen)]
-    if last:
-        keep = sorted(est["date"].unique())[-last:]
-        est = est[est["date"].isin(keep)]
-    order = {a: i for i, a in enumerate(chosen)}
-    est = est.sort_values(["date", "asset"], key=lambda c: c.map(order) if c.name == "asset" else c)
+    machine = as_json or as_csv
+    keep = (0 if machine else TABLE_DATES) if last is None else last
     kinds = ["filtered", "smoothed"] if kind == KindOrBoth.both else [kind.value]
     columns = ["date", "asset"] + [f"{k}_{s}" for k in kinds for s in ("mean", "std")]
-    if as_json:
-        output.emit_json({"run_id": run_id, "as_of": inputs.run["as_of"], "periods_per_year": ppy,
-                          "units": output.MACHINE_UNITS, "rows": est[columns], "caution": output.CAUTION})
-        return
-    if as_csv:
-        output.emit_csv(est[columns])
+    with store_for(st) as store, user_errors():
+        run = get_run(store, run_id)
+        layout = dataset_layout(store, run["dataset_hash"])
+        unknown = [a for a in asset or () if a not in layout["assets"]]
+        if unknown:
+            fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(layout['assets'])}")
+        est, n_dates = run_estimates(store, run_id, assets=asset or None, last=keep, columns=columns)
+    ppy = _run_ppy(run, layout)
+    order = {a: i for i, a in enumerate(asset or layout["assets"])}
+    est = est.assign(_order=est["asset"].map(order)).sort_values(["date", "_order"], kind="stable")
+    est = est[columns].reset_index(drop=True)
+    shown = est["date"].nunique()
+    cut = f"the last {shown} of {n_dates} dates" if shown < n_dates else None
+    if machine:
+        if cut:
+            output.note(f"note: {cut} (--last {keep}); --last 0 gives all")
+        if as_json:
+            output.emit_json({"run_id": run_id, "as_of": run["as_of"], "periods_per_year": ppy,
+                              "units": output.MACHINE_UNITS, "dates_shown": shown, "dates_total": n_dates,
+                              "rows": est, "caution": output.CAUTION})
+        else:
+            output.emit_csv(est)
         return
     headers = ["date", "asset"]
     for k in kinds:
         headers += [f"{k}, % a year", "90% band"]
     rows = []
-    for r in est.itertuples(index=False):
-        cells = [output.day(r.date), r.asset]
+    mean = {k: est[f"{k}_mean"].to_numpy(float) for k in kinds}
+    std = {k: est[f"{k}_std"].to_numpy(float) for k in kinds}
+    for i, (d, a) in enumerate(zip(est["date"].tolist(), est["asset"].tolist())):
+        cells = [output.day(d), a]
         for k in kinds:
-            m, s = getattr(r, f"{k}_mean"), getattr(r, f"{k}_std")
-            cells += [output.num(output.premium_pct(m, ppy), 2), output.band(m, s, ppy)]
+            cells += [output.num(output.premium_pct(mean[k][i], ppy), 2), output.band(mean[k][i], std[k][i], ppy)]
         rows.append(cells)
     basis = " and ".join(f"{k} ({'real-time' if k == 'filtered' else 'revised with all data'})" for k in kinds)
     output.show(output.table(f"Run {run_id} premia, annualised % (x{ppy}), {basis}; as of "
-                             f"{output.day(inputs.run['as_of'])}", headers, rows, right_from=2))
+                             f"{output.day(run['as_of'])}", headers, rows, right_from=2,
+                             caption=None if cut is None else f"{cut}; --last N for more, 0 for all",
+                             drop=[5, 3]))
     output.caution()
 
 
@@ -246,21 +265,20 @@ def cross_section(
 ) -> None:
     """The premia at one date, ranked, with 90% bands and P(premium > 0); --pairs adds the
     probability that one premium exceeds another (from their joint posterior)."""
-    from panel.vintages.reproduce import evaluated_run
+    from panel.vintages.reproduce import run_inputs, stored_cross_section
 
     st = state(ctx)
     when = parse_date(date, "--date")
     with store_for(st) as store, user_errors():
-        result = evaluated_run(store, run_id)
-    as_of = result.dates[-1]
-    when = as_of if when is None else when
-    if when < result.dates[0] or when > as_of:
-        fail(f"--date {when.date()} is outside run {run_id}'s dates {result.dates[0].date()} to "
-             f"{as_of.date()}; give a date in that range")
-    cs = result.cross_section(when, kind.value)
+        dates = run_inputs(store, run_id).panel.dates if when is not None else None
+        if when is not None and (when < dates[0] or when > dates[-1]):
+            fail(f"--date {when.date()} is outside run {run_id}'s dates {dates[0].date()} to "
+                 f"{dates[-1].date()}; give a date in that range")
+        cs, inputs = stored_cross_section(store, run_id, when, kind.value)
+    as_of = inputs.panel.dates[-1]
     ranked = cs.table()
     matrix = cs.prob_greater.loc[list(ranked["asset"]), list(ranked["asset"])]
-    ppy = result.periods_per_year
+    ppy = _ppy(inputs)
     if as_json:
         output.emit_json({"run_id": run_id, "date": cs.date, "kind": kind.value, "as_of": as_of,
                           "periods_per_year": ppy, "units": output.MACHINE_UNITS, "ranked": ranked,

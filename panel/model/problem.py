@@ -68,12 +68,21 @@ class Problem:
                                                 self.sigma_prior, self.h_prior)
 
 
-def covariance_at(res, t: int, kind: str):
-    """(mean, cov, active mask) of the premia at date index ``t`` of the fit ``res`` (one dense pass)."""
-    prob = Problem(res.panel, res.spec)
-    p = res.params
-    out = prob.plan.report(p.Sigma, p.H, cov_at=(t,))
+def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: str = "smoothed"):
+    """Joint posterior (:class:`panel.model.result.CrossSection`) of the premia at the last date on
+    or before ``date`` (``kind`` filtered or smoothed), at parameters ``params``: one pass that
+    forms the moments of that date only where the path allows (the final stretch)."""
+    from panel.model.result import CrossSection
+
+    if kind not in ("filtered", "smoothed"):
+        raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
+    date = pd.Timestamp(date)
+    t = int(panel.dates.searchsorted(date, side="right") - 1)
+    if t < 0:
+        raise ValueError(f"date {date.date()} is before the first date {panel.dates[0].date()}")
+    out = Problem(panel, spec).plan.report(params.Sigma, params.H, cov_at=(t,), only_cov=True)
     mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
     active = ~np.isnan(mean)
     cov = out.covariances[t][kind][np.ix_(active, active)]
-    return mean[active], cov, active
+    return CrossSection(date=panel.dates[t], kind=kind, assets=tuple(np.array(panel.assets)[active]),
+                        mean=mean[active], cov=cov)

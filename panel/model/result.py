@@ -11,7 +11,7 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy.special import ndtr  # the normal cdf, without importing scipy.stats
 
 from panel.data import Panel
 from panel.model.params import Params
@@ -38,7 +38,7 @@ class CrossSection:
 
     @property
     def prob_positive(self) -> np.ndarray:
-        return stats.norm.cdf(self.mean / self.std)
+        return ndtr(self.mean / self.std)
 
     @property
     def prob_greater(self) -> pd.DataFrame:
@@ -46,7 +46,7 @@ class CrossSection:
         v = np.diag(self.cov)[:, None] + np.diag(self.cov)[None, :] - 2.0 * self.cov
         with np.errstate(divide="ignore", invalid="ignore"):
             z = d / np.sqrt(np.maximum(v, 0.0))
-        out = stats.norm.cdf(z)
+        out = ndtr(z)
         np.fill_diagonal(out, np.nan)
         return pd.DataFrame(out, index=list(self.assets), columns=list(self.assets))
 
@@ -120,14 +120,6 @@ class PanelFit:
 
     def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
         """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
-        from panel.model.problem import covariance_at  # the plan is built only when asked
+        from panel.model.problem import cross_section_at  # the plan is built only when asked
 
-        if kind not in ("filtered", "smoothed"):
-            raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
-        date = pd.Timestamp(date)
-        pos = self.dates.searchsorted(date, side="right") - 1
-        if pos < 0:
-            raise ValueError(f"date {date.date()} is before the first date {self.dates[0].date()}")
-        mean, cov, active = covariance_at(self, int(pos), kind)
-        return CrossSection(date=self.dates[pos], kind=kind, assets=tuple(np.array(self.assets)[active]),
-                            mean=mean, cov=cov)
+        return cross_section_at(self.panel, self.spec, self.params, date, kind)
