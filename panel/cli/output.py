@@ -191,6 +191,15 @@ class TextTable:
             if need <= spare:                            # unwrap whole headers, smallest first
                 widths[i] += need
                 spare -= need
+        short = [i for i, j in enumerate(keep) if widths[i] < limits[j][1]]
+        while spare > 0 and short:                       # the rest shared among the others
+            for i in list(short):
+                if spare == 0:
+                    break
+                widths[i] += 1
+                spare -= 1
+                if widths[i] >= limits[keep[i]][1]:
+                    short.remove(i)
         return keep, widths, dropped
 
     def lines(self, width: int) -> tuple[list[str], list[str], list[str]]:

@@ -3,7 +3,6 @@
 
 from __future__ import annotations
 
-import json
 from enum import Enum
 from pathlib import Path
 from typing import Annotated
@@ -71,10 +70,42 @@ def _spec_lines(spec, settings: dict, params, ppy: int) -> list[tuple[str, str]]
                   f"{100 * spec.initial_premium.mean:g}% +- {100 * spec.initial_premium.vol:g}% a year"))
     lines.append(("window", str(settings.get("window", "expanding"))))
     lines.append(("start", "warm (recorded parameters)" if settings.get("start") else "default rule"))
+    budget = "" if spec.time_budget is None else f", time budget {spec.time_budget:g} s"
+    lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
+                                f"{spec.tol:g}/{spec.param_tol:g}, {spec.starts} start(s), std errors "
+                                f"{spec.std_errors}, path {spec.method}"))
     return lines
 
 
+def _flat(value, prefix: str, out: dict) -> None:
+    """Nested settings -> ``prefix_key`` columns (lists joined by ``;``)."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _flat(item, f"{prefix}_{key}", out)
+    elif isinstance(value, (list, tuple)):
+        out[prefix] = ";".join(str(v) for v in value)
+    else:
+        out[prefix] = value
+
+
+def settings_columns(settings: dict) -> dict:
+    """The settings a reader compares runs by, one column each: ``spec_*`` (the recorded model
+    spec, annualised decimals), ``window``, ``warm_start`` (the start parameters themselves are in
+    ``riskprem show --json``)."""
+    settings = settings or {}
+    out = {}
+    _flat({k: v for k, v in (settings.get("spec") or {}).items()}, "spec", out)
+    out["window"] = settings.get("window")
+    out["warm_start"] = settings.get("start") is not None
+    return out
+
+
 # ---------------------------------------------------------------------------------------------
+
+def _text(value) -> str:
+    """A text cell: ``-`` for a missing value (None, NaN)."""
+    return "-" if value is None or value != value or value == "" else str(value)
+
 
 def runs(ctx: typer.Context,
          data: Annotated[str | None, typer.Option("--data", help="Only runs of this dataset (name or hash).",
@@ -95,15 +126,17 @@ def runs(ctx: typer.Context,
         output.emit_json({"store": st.location, "runs": frame})
         return
     if as_csv:
-        output.emit_csv(frame.assign(settings=[json.dumps(s, sort_keys=True) for s in frame["settings"]]))
+        flat = pd.DataFrame([settings_columns(x) for x in frame["settings"]], index=frame.index)
+        output.emit_csv(pd.concat([frame.drop(columns=["settings"]), flat], axis=1))
         return
-    rows = [(r.id, r.kind, name, output.day(r.as_of), r.label or "", r.status,
+    rows = [(r.id, r.kind, name, output.day(r.as_of), _text(r.label), r.status,
              "-" if pd.isna(r.iterations) else int(r.iterations), output.num(r.loglik), output.num(r.bic),
              output.num(r.duration_s, 1), str(r.started_utc)[:16])
             for r, name in zip(frame.itertuples(index=False), shown)]
     output.show(output.table(f"Runs in {st.location}" + (f" (dataset {data})" if data else ""),
                              ["run", "kind", "dataset", "as of", "label", "status", "iter", "loglik", "BIC",
-                              "seconds", "started UTC"], rows, right_from=6))
+                              "seconds", "started UTC"], rows, right_from=6,
+                             drop=["started UTC", "seconds", "kind", "iter", "BIC", "label"]))
     if not rows:
         output.line("no runs yet; estimate one with `riskprem fit --data NAME`")
 
@@ -333,21 +366,30 @@ def diff(ctx: typer.Context,
     """Two runs side by side: fit statistics, settings that differ, latest premia and parameters."""
     import pandas as pd
 
-    from panel.vintages.reproduce import run_inputs
+    from panel.vintages.reproduce import run_inputs, stored_params
     from panel.store import run_query, run_tables
 
     st = state(ctx)
     with store_for(st) as store, user_errors():
         inputs = [run_inputs(store, run_a), run_inputs(store, run_b)]
-        est = [run_tables(store, r)["estimates"] for r in (run_a, run_b)]
+        params = [stored_params(store, i) for i in inputs]
+        est = [run_tables(store, r, kinds=("estimates",))["estimates"] for r in (run_a, run_b)]
         changes = run_query(store, "parameter_changes", {"run_a": run_a, "run_b": run_b})
     runs_ = [i.run for i in inputs]
     ppy = [_ppy(i) for i in inputs]
+    # compare the settings as they resolve on each run's data (auto choices filled in, volatilities
+    # in today's convention), so two records of the same model are not "different"
+    lines = [dict(_spec_lines(i.spec, i.run["settings"] or {}, p, y)) for i, p, y in zip(inputs, params, ppy)]
+    if runs_[0]["dataset_hash"] != runs_[1]["dataset_hash"]:
+        for side, run in zip(lines, runs_):
+            side["dataset"] = output.short_hash(run["dataset_hash"])
+    keys = list(dict.fromkeys([*lines[0], *lines[1]]))
+    settings = [{"setting": k, "run_a": lines[0].get(k, "-"), "run_b": lines[1].get(k, "-")}
+                for k in keys if lines[0].get(k) != lines[1].get(k)]
+    changed = [row["setting"] for row in settings]
     spec_a = (runs_[0]["settings"] or {}).get("spec", {})
     spec_b = (runs_[1]["settings"] or {}).get("spec", {})
-    changed = sorted(k for k in set(spec_a) | set(spec_b) if spec_a.get(k) != spec_b.get(k))
-    if runs_[0]["dataset_hash"] != runs_[1]["dataset_hash"]:
-        changed.insert(0, "dataset")
+    recorded_only = sorted(k for k in set(spec_a) | set(spec_b) if spec_a.get(k) != spec_b.get(k))
     latest = []
     for e, run in zip(est, runs_):
         e = e.assign(date=pd.to_datetime(e["date"]))
@@ -372,7 +414,9 @@ def diff(ctx: typer.Context,
                           "runs": [{k: r[k] for k in ("id", "kind", "label", "dataset_hash", "as_of", "status",
                                                       "loglik", "aic", "bic", "n_params", "iterations")}
                                    for r in runs_],
-                          "settings_changed": changed, "common_date": common, "periods_per_year": ppy,
+                          "settings_changed": changed, "settings": settings,
+                          "recorded_spec_keys_differing": recorded_only, "common_date": common,
+                          "periods_per_year": ppy,
                           "units": output.MACHINE_UNITS, "premia": premia, "parameters": changes,
                           "caution": output.CAUTION})
         return
@@ -393,7 +437,13 @@ def diff(ctx: typer.Context,
             a, b = output.num(a), output.num(b)
         rows.append((title, a if a is not None else "-", b if b is not None else "-"))
     output.show(output.table(f"Run {run_a} vs run {run_b}", ["", f"run {run_a}", f"run {run_b}"], rows))
-    output.line("settings that differ: " + (", ".join(changed) if changed else "none"))
+    if settings:
+        output.show(output.table("Settings that differ (as resolved on each run's data)",
+                                 ["setting", f"run {run_a}", f"run {run_b}"],
+                                 [(r["setting"], r["run_a"], r["run_b"]) for r in settings], right_from=3))
+    else:
+        output.line("settings that differ: none" + (f" (recorded differently but the same model: "
+                                                    f"{', '.join(recorded_only)})" if recorded_only else ""))
     if ppy[0] != ppy[1]:
         output.line(f"note: the runs have different periods a year ({ppy[0]} and {ppy[1]})")
     rows = []

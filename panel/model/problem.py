@@ -14,6 +14,7 @@ from panel.model import mstep as ms
 from panel.model.params import Packer, Params
 from panel.model.spec import ModelSpec, ResolvedSpec, SpecError
 from panel.model.start import volatility_scale
+from panel.threads import blas_limited
 
 
 def as_panel(data) -> Panel:
@@ -68,21 +69,11 @@ class Problem:
                                                 self.sigma_prior, self.h_prior)
 
 
-def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: str = "smoothed"):
-    """Joint posterior (:class:`panel.model.result.CrossSection`) of the premia at the last date on
-    or before ``date`` (``kind`` filtered or smoothed), at parameters ``params``: one pass that
-    forms the moments of that date only where the path allows (the final stretch)."""
-    from panel.model.result import CrossSection
-
-    if kind not in ("filtered", "smoothed"):
-        raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
-    date = pd.Timestamp(date)
-    t = int(panel.dates.searchsorted(date, side="right") - 1)
-    if t < 0:
-        raise ValueError(f"date {date.date()} is before the first date {panel.dates[0].date()}")
+@blas_limited
+def covariance_at(panel: Panel, spec: ModelSpec, params: Params, t: int, kind: str):
+    """(mean, cov, active mask) of the premia at date index ``t`` at parameters ``params``: one pass
+    that forms the moments of that date only where the path allows (the final stretch)."""
     out = Problem(panel, spec).plan.report(params.Sigma, params.H, cov_at=(t,), only_cov=True)
     mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
     active = ~np.isnan(mean)
-    cov = out.covariances[t][kind][np.ix_(active, active)]
-    return CrossSection(date=panel.dates[t], kind=kind, assets=tuple(np.array(panel.assets)[active]),
-                        mean=mean[active], cov=cov)
+    return mean[active], out.covariances[t][kind][np.ix_(active, active)], active

@@ -57,6 +57,22 @@ class CrossSection:
         return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
 
 
+def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: str = "smoothed") -> CrossSection:
+    """Joint posterior of the premia at the last date on or before ``date`` (``kind`` filtered or
+    smoothed) at parameters ``params`` -- a fit's, or a stored run's without re-running its report."""
+    from panel.model.problem import covariance_at  # the plan is built only when asked
+
+    if kind not in ("filtered", "smoothed"):
+        raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
+    date = pd.Timestamp(date)
+    t = int(panel.dates.searchsorted(date, side="right") - 1)
+    if t < 0:
+        raise ValueError(f"date {date.date()} is before the first date {panel.dates[0].date()}")
+    mean, cov, active = covariance_at(panel, spec, params, t, kind)
+    return CrossSection(date=panel.dates[t], kind=kind, assets=tuple(np.array(panel.assets)[active]),
+                        mean=mean, cov=cov)
+
+
 @dataclass(frozen=True, eq=False)
 class PanelFit:
     """A fitted (or, with status ``fixed``, evaluated) premium panel.  See DEVELOPERS.md for the
@@ -120,6 +136,4 @@ class PanelFit:
 
     def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
         """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
-        from panel.model.problem import cross_section_at  # the plan is built only when asked
-
         return cross_section_at(self.panel, self.spec, self.params, date, kind)

@@ -126,7 +126,7 @@ def stored_cross_section(store: Store, run_id: int, date=None, kind: str = "smoo
     """``(cross_section, inputs)``: the joint posterior of stored run ``run_id``'s premia at
     ``date`` (default its as-of), at its stored parameters -- the same numbers as
     ``evaluated_run(...).cross_section(date, kind)`` without re-running the whole report."""
-    from panel.model.problem import cross_section_at
+    from panel.model.result import cross_section_at
 
     inputs = run_inputs(store, run_id)
     when = inputs.panel.dates[-1] if date is None else date
