@@ -183,6 +183,33 @@ def _typed(ctx, name: str) -> bool:
     return source is not None and source.name not in ("DEFAULT", "DEFAULT_MAP")
 
 
+def option_types() -> dict:
+    """Option name -> the type its value takes (int, float, str, an Enum or list), from :data:`OPTIONS`."""
+    found = {}
+    for name, annotation, _ in OPTIONS:
+        base = typing.get_args(annotation)[0]                    # Annotated[X, Option(...)] -> X
+        kinds = [t for t in (typing.get_args(base) or (base,)) if t is not type(None)]
+        found[name] = typing.get_origin(kinds[0]) or kinds[0]    # list[str] -> list
+    return found
+
+
+def check_option(name: str, value) -> None:
+    """Raise ``ValueError`` (the reason) when option ``name`` cannot take ``value``: the spec it
+    describes is built and resolved on a nominal 12-asset monthly panel, so a profile's bad value
+    is named when the profile is read, not halfway through a command."""
+    from panel.model.spec import SpecError
+
+    try:
+        spec = ModelOptions(**{name: value}).spec()
+        assets = tuple(f"a{i}" for i in range(12))
+        if all(":" not in key for key, _ in spec.fixed):       # per-asset fixes need the data
+            spec.resolve(len(assets), 12, 240, assets)
+    except typer.BadParameter as error:
+        raise ValueError(error.message) from None
+    except SpecError as error:
+        raise ValueError(str(error)) from None
+
+
 def _options_from(kwargs: dict) -> ModelOptions:
     """Pop the model and profile options out of a command's ``kwargs``; load the profile."""
     from panel.cli.profiles import ProfileError, load_profile
@@ -198,7 +225,7 @@ def _options_from(kwargs: dict) -> ModelOptions:
                                      param_hint="--config")
         return ModelOptions(**values, explicit=explicit)
     try:
-        found = load_profile(profile, config)
+        found = load_profile(profile, config, option_types(), check_option)
     except ProfileError as error:
         fail(str(error))
     return ModelOptions(**values, profile=profile, profile_values=tuple(found.items()), explicit=explicit)

@@ -45,21 +45,6 @@ def _read(path: Path) -> dict:
         raise ProfileError(f"{path}: not valid TOML ({error}); fix the file") from None
 
 
-def option_types() -> dict:
-    """Option name -> the type its value takes (int, float, str, an Enum or list), read from
-    :data:`panel.cli.model_options.OPTIONS` (the options are defined there only)."""
-    import typing
-
-    from panel.cli.model_options import OPTIONS
-
-    found = {}
-    for name, annotation, _ in OPTIONS:
-        base = typing.get_args(annotation)[0]                    # Annotated[X, Option(...)] -> X
-        kinds = [t for t in (typing.get_args(base) or (base,)) if t is not type(None)]
-        found[name] = typing.get_origin(kinds[0]) or kinds[0]    # list[str] -> list
-    return found
-
-
 def _value(key: str, value, where: str, kind):
     """``value`` of ``key`` checked for its type and converted to what the option takes."""
     from enum import Enum
@@ -90,29 +75,14 @@ def _value(key: str, value, where: str, kind):
     return value
 
 
-def _check(values: dict, where: str) -> None:
-    """Build the spec these values describe (on a nominal 12-asset monthly panel) so that a bad
-    value is named now, not halfway through a command."""
-    import typer
-
-    from panel.cli.model_options import ModelOptions
-    from panel.model.spec import SpecError
-
-    for key, value in values.items():
-        try:
-            spec = ModelOptions(**{key: value}).spec()
-            assets = tuple(f"a{i}" for i in range(12))
-            if all(":" not in name for name, _ in spec.fixed):  # per-asset fixes need the data
-                spec.resolve(len(assets), 12, 240, assets)
-        except typer.BadParameter as error:
-            raise ProfileError(f"{where}, key {key!r}: {error.message}") from None
-        except SpecError as error:
-            raise ProfileError(f"{where}, key {key!r}: {error}") from None
-
-
-def load_profile(name: str, config: Path | None = None) -> dict:
+def load_profile(name: str, config: Path | None, kinds: dict, check) -> dict:
     """The model options of profile ``name`` (option name -> typed value) from ``config`` or
-    ``./riskprem.toml``; raises :class:`ProfileError`."""
+    ``./riskprem.toml``; raises :class:`ProfileError`.
+
+    ``kinds``: option name -> the type its value takes (int, float, str, an Enum or list);
+    ``check(name, value)`` raises ``ValueError`` with the reason when a value cannot be used.
+    (Both come from :mod:`panel.cli.model_options`, where the options are defined.)
+    """
     path = profile_path(config)
     document = _read(path)
     extra = sorted(set(document) - {"profiles"})
@@ -124,12 +94,14 @@ def load_profile(name: str, config: Path | None = None) -> dict:
         known = ", ".join(sorted(p for p in profiles if isinstance(profiles.get(p), dict))) or "none"
         raise ProfileError(f"{path}: no profile {name!r} (profiles: {known}); add [profiles.{name}] "
                            "or pick another")
-    kinds = option_types()
     found = {}
     for key, value in profiles[name].items():
         where = f"{path}: profile {name!r}, key {key!r}"
         if key not in kinds:
             raise ProfileError(f"{where}: not a model option; use one of {', '.join(kinds)}")
         found[key] = _value(key, value, where, kinds[key])
-    _check(found, f"{path}: profile {name!r}")
+        try:
+            check(key, found[key])
+        except ValueError as error:
+            raise ProfileError(f"{where}: {error}") from None
     return found
