@@ -18,7 +18,7 @@ from panel.model.params import Params
 from panel.model.spec import ModelSpec
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class CrossSection:
     """Joint posterior of all premia at one date.
 
@@ -31,6 +31,10 @@ class CrossSection:
     assets: tuple[str, ...]
     mean: np.ndarray
     cov: np.ndarray
+
+    def __repr__(self) -> str:
+        return (f"<CrossSection {self.kind} at {self.date.date()}, {len(self.assets)} assets; "
+                ".table() for the ranked premia>")
 
     @property
     def std(self) -> np.ndarray:
@@ -73,7 +77,7 @@ def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: 
                         mean=mean, cov=cov)
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class PanelFit:
     """A fitted (or, with status ``fixed``, evaluated) premium panel.  See DEVELOPERS.md for the
     columns of the long tables.
@@ -82,6 +86,8 @@ class PanelFit:
     ``n_params``, ``aic``, ``bic``, ``n_iter`` (E-steps), ``converged``, ``status``, ``message``,
     ``elapsed``; tables ``estimates``, ``factors``, ``parameters``, ``trace``, ``diagnostics``.
     Settings: ``spec`` and ``start`` (warm-start parameters or None); data: ``panel``.
+    People read ``summary()`` (text; HTML in a notebook), ``annualised_estimates()`` and
+    ``annualised_parameters()`` (% a year, :mod:`panel.model.summary`).
     """
 
     panel: Panel
@@ -133,6 +139,34 @@ class PanelFit:
         return {"estimates": self.estimates, "factor_paths": self.factors,
                 "parameters": self.parameters, "em_trace": self.trace,
                 "diagnostics": self.diagnostics}
+
+    def summary(self) -> str:
+        """Data, model, status, fit statistics and the latest premia (% a year), in a few lines."""
+        from panel.model.summary import summary_text
+
+        return summary_text(self)
+
+    def _repr_html_(self) -> str:
+        from panel.model.summary import summary_html
+
+        return summary_html(self)
+
+    def __repr__(self) -> str:
+        from panel.model.summary import short_repr
+
+        return short_repr(self)
+
+    def annualised_estimates(self) -> pd.DataFrame:
+        """``estimates`` with premia and stds in % a year (columns ``*_pct_a_year``; ``attrs``)."""
+        from panel.model.summary import annualised_estimates
+
+        return annualised_estimates(self)
+
+    def annualised_parameters(self) -> pd.DataFrame:
+        """Per asset: loadings, own and total premium volatility, return-shock volatility, % a year."""
+        from panel.model.summary import annualised_parameters
+
+        return annualised_parameters(self)
 
     def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
         """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
