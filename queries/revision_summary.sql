@@ -3,9 +3,12 @@
 --   For each asset and date covered by at least two vintages: revision = the newest vintage's
 --   smoothed mean minus the first covering vintage's filtered mean (first release); then per asset
 --   the number of such dates, their range, and the mean absolute, mean and largest absolute
---   revision.  Failed runs are ignored.  Per-period decimal units.
+--   revision.  Each asset's first :skip dates (a burn-in: the first estimates after an asset enters
+--   rest on few returns and move most) are left out.  Failed runs are ignored.  Per-period
+--   decimal units.
 -- param dataset: dataset hash (run_query also accepts a dataset name or hash prefix)
 -- param key: backfill key of the vintages (runs.backfill_key), or NULL for all runs of the dataset
+-- param skip: dates left out at the start of each asset's estimates (0 or NULL: none)
 -- columns: asset, n_dates, first_date, last_date, mean_abs_revision, mean_revision, max_abs_revision
 WITH vintage AS (
     SELECT id AS run_id, as_of,
@@ -28,7 +31,8 @@ per_date AS (
     SELECT asset, date,
            MAX(CASE WHEN first_rank = 1 THEN filtered_mean END) AS first_release,
            MAX(CASE WHEN last_rank = 1 THEN smoothed_mean END) AS latest,
-           MAX(n_vintages) AS n_vintages
+           MAX(n_vintages) AS n_vintages,
+           ROW_NUMBER() OVER (PARTITION BY asset ORDER BY date) AS period
     FROM paths
     GROUP BY asset, date
 )
@@ -37,6 +41,6 @@ SELECT asset, COUNT(*) AS n_dates, MIN(date) AS first_date, MAX(date) AS last_da
        AVG(latest - first_release) AS mean_revision,
        MAX(ABS(latest - first_release)) AS max_abs_revision
 FROM per_date
-WHERE n_vintages >= 2
+WHERE n_vintages >= 2 AND period > COALESCE(CAST(:skip AS INTEGER), 0)
 GROUP BY asset
 ORDER BY asset

@@ -161,6 +161,9 @@ def backfill(
         first, last = plan.vintages[0].as_of, plan.vintages[-1].as_of
         info(st, f"backfill of {data}: {len(plan.vintages)} cut-offs {output.day(first)} to {output.day(last)} "
                  f"({plan.window.text}), {len(plan.skipped)} already stored, {len(plan.todo)} to fit")
+        reason = serial_reason(plan, workers, scheduler)
+        if reason and not st.quiet:
+            output.note(reason)
         with _Progress(st) as bar:
             try:
                 report = run_backfill(store, plan, workers=workers, scheduler=scheduler, progress=bar)
@@ -182,6 +185,17 @@ def backfill(
             output.error_line(f"interrupted: {len(report.written)} vintage(s) stored this time, each complete; "
                               "run the same command again to resume")
         raise typer.Exit(130)
+
+
+def serial_reason(plan, workers: int | None, scheduler: str | None) -> str | None:
+    """Why ``--workers N`` (N > 1) will run the fits in one process, or None."""
+    if scheduler is not None or not workers or workers <= 1 or not plan.todo or plan.n_chains() > 1:
+        return None
+    why = ("warm starts link each cut-off to the one before" if plan.warm_start
+           else "there is one chain")
+    return (f"note: running in one process although --workers {workers}: the {len(plan.todo)} cut-off(s) to "
+            f"fit form one chain of --chain {plan.chain} and {why}, so they run in order; a smaller --chain "
+            "splits them into chains that run in parallel")
 
 
 def _print_backfill(st, data, plan, report, vintages, interrupted) -> None:
@@ -221,6 +235,9 @@ def revisions(
                                       "followed across vintages, YYYY-MM-DD.", show_default=False)],
     key: KeyOpt = None,
     window: WindowOpt = None,
+    skip: Annotated[int, typer.Option("--skip", min=0, metavar="N", help="Leave each asset's first N dates "
+                                      "out of the per-asset summary (a burn-in: the first estimates after an "
+                                      "asset enters rest on few returns and are revised most).")] = 0,
     model: ModelOptions = ModelOptions(),
     as_json: JsonFlag = False,
     as_csv: CsvFlag = False,
@@ -238,7 +255,7 @@ def revisions(
     day = parse_date(date, "--date")
     with store_for(st) as store, user_errors():
         chosen = _chosen_backfill(store, data, key, window, model)
-        found = revision_path(store, chosen, asset, day)
+        found = revision_path(store, chosen, asset, day, skip=skip)
         ppy = _ppy(store, chosen)
     if as_csv:
         output.emit_csv(found.path)
@@ -250,6 +267,7 @@ def revisions(
                                                                      "filtered_mean": found.first_release[1]},
                           "latest": {"as_of": found.latest[0], "smoothed_mean": found.latest[1]},
                           "total_revision": found.total_revision, "vintages": found.path,
+                          "skip": found.skip,
                           "mean_abs_revision": found.summary, "caution": output.CAUTION})
         return
     pct = lambda v, digits=2: output.num(output.premium_pct(v, ppy), digits)  # noqa: E731
@@ -272,7 +290,9 @@ def revisions(
     output.show(output.table(
         f"Revisions per asset, annualised % (x{ppy}): newest smoothed minus first release",
         ["asset", "dates", "range", "mean |revision|", "mean revision", "largest |revision|"], summary,
-        caption="Over the dates that at least two vintages cover."))
+        caption="Over the dates that at least two vintages cover" + (
+            f", after each asset's first {found.skip} dates (--skip)." if found.skip else
+            "; each asset's first dates included (--skip N leaves out a burn-in).")))
     output.caution()
 
 
@@ -300,7 +320,7 @@ def evaluate(
     pooled: out-of-sample R² (Campbell & Thompson 2008; above 0 = better than the historical mean)
     and the Clark & West (2007) MSPE-adjusted t-statistic with its one-sided p-value.
     """
-    from panel.vintages.evaluation import evaluate_backfill
+    from panel.vintages.evaluation import MIN_FORECASTS, evaluate_backfill
 
     st = state(ctx)
     if lags is not None and se is SeKind.plain:
@@ -321,13 +341,15 @@ def evaluate(
                           "window": chosen.window, "se": se.value, "lags": lags, "units": output.MACHINE_UNITS,
                           "periods_per_year": ppy, "assets": table, "pooled": result.pooled,
                           "pending_forecasts": result.pending, "forecasts": result.forecasts,
+                          "min_forecasts": MIN_FORECASTS,
                           "caution": output.CAUTION})
         return
     pct = lambda v: output.num(output.premium_pct(v, ppy), 2)  # noqa: E731
 
     def row(name, r):
+        p_value = output.num(r["cw_pvalue"], 3) if r["enough"] else f"(n<{MIN_FORECASTS})"
         return (name, r["n"], output.day(r["first_target"]), output.num(100 * r["r2_os"], 2),
-                output.num(r["cw_t"], 2), output.num(r["cw_pvalue"], 3), pct(r["mean_forecast"]),
+                output.num(r["cw_t"], 2), p_value, pct(r["mean_forecast"]),
                 pct(r["mean_benchmark"]), output.num(100 * r["mspe_model"] ** 0.5, 2),
                 output.num(100 * r["mspe_benchmark"] ** 0.5, 2))
 
@@ -344,6 +366,13 @@ def evaluate(
                       f"(2007) MSPE-adjusted t, p one-sided (H1: the model forecasts better); SE {se_text}, "
                       f"pooled over assets by date. Forecast and historical mean: averages, annualised % "
                       f"(x{ppy}); RMSE per {unit}, not annualised."))
+    few = [r["asset"] for r in table.to_dict(orient="records") if not r["enough"]]
+    few += ["(pooled)"] if not result.pooled["enough"] else []
+    if few:
+        output.line(f"warning: {len(few)} row(s) rest on fewer than {MIN_FORECASTS} forecasts ({', '.join(few[:6])}"
+                    f"{', ...' if len(few) > 6 else ''}): their p-values are not shown (the normal approximation "
+                    f"of the t-statistic wants {MIN_FORECASTS}+, common practice); backfill more cut-offs",
+                    style="yellow")
     if result.pending:
         output.line(f"{result.pending} forecast(s) have no realized return yet (or it is missing): left out")
     output.caution()

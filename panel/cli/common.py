@@ -12,13 +12,9 @@ from enum import Enum
 from pathlib import Path
 from typing import Annotated, Iterator, NoReturn
 
-import pandas as pd
 import typer
 
 from panel.cli import output
-from panel.ingest import IngestError
-from panel.model.spec import SpecError
-from panel.store import StoreError, open_store, public_location, resolve_location
 
 #: Seconds a command waits for another process's write lock on the store before giving up.
 DEFAULT_LOCK_WAIT = 10.0
@@ -26,6 +22,9 @@ DEFAULT_LOCK_WAIT = 10.0
 
 def user_error_types() -> tuple[type[BaseException], ...]:
     """The library errors that mean "bad input": printed as one line, exit code 1."""
+    from panel.ingest import IngestError
+    from panel.model.spec import SpecError
+    from panel.store import StoreError
     from panel.vintages.backfill import BackfillError
 
     return (SpecError, IngestError, StoreError, BackfillError)
@@ -42,11 +41,15 @@ class State:
 
     @property
     def location(self) -> str:
+        from panel.store import resolve_location
+
         return resolve_location(self.store)
 
     @property
     def shown(self) -> str:
         """The location as it may be printed: a URL's password masked."""
+        from panel.store import public_location
+
         return public_location(self.location)
 
 
@@ -75,6 +78,8 @@ def user_errors() -> Iterator[None]:
 def store_for(st: State, write: bool = False, hold: bool = True):
     """Open the store read-only (default) or read-write; errors become one line, exit 1.
     ``hold=False``: a DuckDB file is held only while each read or write runs (long commands)."""
+    from panel.store import open_store
+
     with user_errors():
         store = open_store(st.location, read_only=not write, lock_timeout=st.lock_wait, hold=hold)
     try:
@@ -161,9 +166,12 @@ CsvFlag = Annotated[bool, typer.Option("--csv", help="CSV on stdout (per-period 
 RunArg = Annotated[int, typer.Argument(metavar="RUN", help="Run id (see `riskprem runs`).", show_default=False)]
 
 
-def parse_date(value: str | None, option: str) -> pd.Timestamp | None:
+def parse_date(value: str | None, option: str):
+    """``value`` as a normalised ``pd.Timestamp`` (None stays None); not a date: exit 2."""
     if value is None:
         return None
+    import pandas as pd
+
     try:
         stamp = pd.Timestamp(str(value).strip())
     except (TypeError, ValueError):

@@ -5,7 +5,6 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Annotated
 
-import pandas as pd
 import typer
 
 from panel.cli import output
@@ -88,6 +87,8 @@ def fit(
     (annualised %, with 90% bands).  Volatility options are annualised percent.  The store is
     written only after a successful fit, in one transaction.
     """
+    import pandas as pd
+
     from panel.model.fit import fit as estimate
     from panel.store import json_ready
     from panel.vintages.reproduce import record_fit

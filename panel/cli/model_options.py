@@ -2,8 +2,10 @@
 
 A command declares one parameter ``model: ModelOptions`` and is decorated with
 :func:`with_model_options`; the decorator adds the options below to the command's signature (so
-typer shows them in ``--help``) and hands the command one :class:`ModelOptions` value.  Volatilities
-are annualised percent on the command line and become the spec's annualised decimals here.
+typer shows them in ``--help``), plus ``--profile NAME`` and ``--config PATH`` (named set-ups,
+:mod:`panel.cli.profiles`), and hands the command one :class:`ModelOptions` value.  Options typed on
+the command line win over the profile's.  Volatilities are annualised percent on the command line
+and become the spec's annualised decimals here.
 """
 
 from __future__ import annotations
@@ -13,11 +15,12 @@ import functools
 import inspect
 import typing
 from enum import Enum
+from pathlib import Path
 from typing import Annotated
 
 import typer
 
-from panel.cli.common import parse_assignments, parse_number, parse_pair
+from panel.cli.common import fail, parse_assignments, parse_number, parse_pair
 
 
 class Shocks(str, Enum):
@@ -82,6 +85,16 @@ OPTIONS = (
                              "150). Default auto.", show_default=False)], None),
 )
 DEFAULTS = {name: default for name, _, default in OPTIONS}
+#: The profile options the decorator adds before the model options.
+PROFILE_OPTIONS = (
+    ("profile", Annotated[str | None, typer.Option(
+        "--profile", metavar="NAME",
+        help="Model options from profile NAME of riskprem.toml (or --config); options given here win "
+             "(--fix per name).", show_default=False)], None),
+    ("config", Annotated[Path | None, typer.Option(
+        "--config", metavar="PATH", envvar="RISKPREM_CONFIG",
+        help="The profile file (default ./riskprem.toml).", show_default=False)], None),
+)
 
 
 @dataclasses.dataclass(frozen=True)
@@ -100,44 +113,122 @@ class ModelOptions:
     max_iter: int | None = None
     time_budget: float | None = None
     std_errors: StdErrors | None = None
+    #: The profile's name and its values ((option, value) pairs), if one was asked for.
+    profile: str | None = None
+    profile_values: tuple = ()
+    #: Options typed on the command line (None: every field as set here, e.g. from Python).
+    explicit: frozenset | None = None
+
+    def effective(self) -> dict:
+        """Option name -> value after merging: typed options win over the profile's values, which
+        win over the defaults; ``fix`` entries merge by name."""
+        values = {name: getattr(self, name) for name in DEFAULTS}
+        typed = set(DEFAULTS) if self.explicit is None else set(self.explicit)
+        for name, value in self.profile_values:
+            if name == "fix":
+                mine = parse_assignments(self.fix, "--fix") if "fix" in typed else {}
+                merged = {**parse_assignments(value, "--fix"), **mine}
+                values["fix"] = tuple(f"{key}={item}" for key, item in merged.items())
+            elif name not in typed:
+                values[name] = value
+        return values
 
     def given(self) -> bool:
         """Whether any option differs from its default (the user described a model)."""
-        return any(getattr(self, name) not in (default, None, [], ()) for name, default in DEFAULTS.items()
-                   if name != "fix") or bool(self.fix)
+        values = self.effective()
+        return any(values[name] not in (default, None, [], ()) for name, default in DEFAULTS.items()
+                   if name != "fix") or bool(values["fix"])
 
     def spec(self):
-        """The :class:`~panel.model.spec.ModelSpec` these options describe (syntax errors exit 2)."""
+        """The :class:`~panel.model.spec.ModelSpec` these options describe, profile merged in
+        (syntax errors exit 2)."""
         from panel.model.spec import InitialPremium, ModelSpec, Prior, VolScale
 
+        v = self.effective()
         fixed = {name: parse_number(value, "--fix", name) / 100.0
-                 for name, value in parse_assignments(self.fix, "--fix").items()}
+                 for name, value in parse_assignments(v["fix"], "--fix").items()}
         scale = None
-        text = (self.vol_scale or "none").strip().lower()
+        text = (v["vol_scale"] or "none").strip().lower()
         if text != "none":
             kind, sep, half = text.partition(":")
             if kind != "ewma" or not sep:
-                raise typer.BadParameter(f"{self.vol_scale!r} is not 'none' or 'ewma:HALFLIFE'",
+                raise typer.BadParameter(f"{v['vol_scale']!r} is not 'none' or 'ewma:HALFLIFE'",
                                          param_hint="--vol-scale")
             scale = VolScale("ewma", half_life=parse_number(half, "--vol-scale", "half-life"))
         prior = None
-        if self.premium_prior is not None:
-            vol, weight = parse_pair(self.premium_prior, "--premium-prior", "vol", "weight")
+        if v["premium_prior"] is not None:
+            vol, weight = parse_pair(v["premium_prior"], "--premium-prior", "vol", "weight")
             prior = Prior(vol=vol / 100.0, weight=weight)
         start = None
-        if self.initial_premium is not None:
-            mean, vol = parse_pair(self.initial_premium, "--initial-premium", "mean", "vol")
+        if v["initial_premium"] is not None:
+            mean, vol = parse_pair(v["initial_premium"], "--initial-premium", "mean", "vol")
             start = InitialPremium(mean=mean / 100.0, vol=vol / 100.0)
-        extra = {} if self.max_iter is None else {"max_iter": self.max_iter}
-        if self.std_errors is not None:
-            extra["std_errors"] = self.std_errors.value
-        if self.time_budget is not None:
-            extra["time_budget"] = self.time_budget   # a non-finite one is refused in one line later
-        return ModelSpec(premium_factors=self.premium_factors,
-                         return_shocks=None if self.return_shocks is None else self.return_shocks.value,
-                         return_factors=self.return_factors, vol_scale=scale, fixed=fixed,
-                         max_premium_vol=None if self.max_premium_vol is None else self.max_premium_vol / 100.0,
-                         premium_prior=prior, initial_premium=start, starts=self.starts, **extra)
+        extra = {} if v["max_iter"] is None else {"max_iter": v["max_iter"]}
+        if v["std_errors"] is not None:
+            extra["std_errors"] = v["std_errors"].value
+        if v["time_budget"] is not None:
+            extra["time_budget"] = v["time_budget"]   # a non-finite one is refused in one line later
+        cap = v["max_premium_vol"]
+        return ModelSpec(premium_factors=v["premium_factors"],
+                         return_shocks=None if v["return_shocks"] is None else v["return_shocks"].value,
+                         return_factors=v["return_factors"], vol_scale=scale, fixed=fixed,
+                         max_premium_vol=None if cap is None else cap / 100.0,
+                         premium_prior=prior, initial_premium=start, starts=v["starts"], **extra)
+
+
+def _typed(ctx, name: str) -> bool:
+    """Whether option ``name`` was given on the command line or by its environment variable
+    (typer passes defaults for the others, so the value alone cannot tell)."""
+    source = ctx.get_parameter_source(name) if ctx is not None else None
+    return source is not None and source.name not in ("DEFAULT", "DEFAULT_MAP")
+
+
+def option_types() -> dict:
+    """Option name -> the type its value takes (int, float, str, an Enum or list), from :data:`OPTIONS`."""
+    found = {}
+    for name, annotation, _ in OPTIONS:
+        base = typing.get_args(annotation)[0]                    # Annotated[X, Option(...)] -> X
+        kinds = [t for t in (typing.get_args(base) or (base,)) if t is not type(None)]
+        found[name] = typing.get_origin(kinds[0]) or kinds[0]    # list[str] -> list
+    return found
+
+
+def check_option(name: str, value) -> None:
+    """Raise ``ValueError`` (the reason) when option ``name`` cannot take ``value``: the spec it
+    describes is built and resolved on a nominal 12-asset monthly panel, so a profile's bad value
+    is named when the profile is read, not halfway through a command."""
+    from panel.model.spec import SpecError
+
+    try:
+        spec = ModelOptions(**{name: value}).spec()
+        assets = tuple(f"a{i}" for i in range(12))
+        if all(":" not in key for key, _ in spec.fixed):       # per-asset fixes need the data
+            spec.resolve(len(assets), 12, 240, assets)
+    except typer.BadParameter as error:
+        raise ValueError(error.message) from None
+    except SpecError as error:
+        raise ValueError(str(error)) from None
+
+
+def _options_from(kwargs: dict) -> ModelOptions:
+    """Pop the model and profile options out of a command's ``kwargs``; load the profile."""
+    from panel.cli.profiles import ProfileError, load_profile
+
+    values = {name: kwargs.pop(name, DEFAULTS[name]) for name in DEFAULTS}
+    values["fix"] = tuple(values["fix"] or ())
+    profile, config = kwargs.pop("profile", None), kwargs.pop("config", None)
+    ctx = kwargs.get("ctx")
+    explicit = frozenset(name for name in DEFAULTS if _typed(ctx, name)) if ctx is not None else None
+    if profile is None:
+        if config is not None and _typed(ctx, "config") and ctx.get_parameter_source("config").name != "ENVIRONMENT":
+            raise typer.BadParameter("--config names the profile file; give --profile NAME too",
+                                     param_hint="--config")
+        return ModelOptions(**values, explicit=explicit)
+    try:
+        found = load_profile(profile, config, option_types(), check_option)
+    except ProfileError as error:
+        fail(str(error))
+    return ModelOptions(**values, profile=profile, profile_values=tuple(found.items()), explicit=explicit)
 
 
 def with_model_options(command):
@@ -148,15 +239,13 @@ def with_model_options(command):
               for p in signature.parameters.values() if p.name != "model"]
     cut = next((i for i, p in enumerate(params) if p.name in ("as_json", "as_csv")), len(params))
     added = [inspect.Parameter(name, inspect.Parameter.KEYWORD_ONLY, default=default, annotation=annotation)
-             for name, annotation, default in OPTIONS]
+             for name, annotation, default in (*PROFILE_OPTIONS, *OPTIONS)]
     params = [p.replace(kind=inspect.Parameter.KEYWORD_ONLY) if i >= cut else p for i, p in enumerate(params)]
     params = params[:cut] + added + params[cut:]
 
     @functools.wraps(command)
     def wrapper(*args, **kwargs):
-        values = {name: kwargs.pop(name, DEFAULTS[name]) for name in DEFAULTS}
-        values["fix"] = tuple(values["fix"] or ())
-        return command(*args, model=ModelOptions(**values), **kwargs)
+        return command(*args, model=_options_from(kwargs), **kwargs)
 
     wrapper.__signature__ = signature.replace(parameters=params)
     wrapper.__annotations__ = {p.name: p.annotation for p in params}

@@ -20,15 +20,13 @@ import csv
 import io
 import json
 import math
+import os
 import sys
+import textwrap
 from datetime import date, datetime
 
-import numpy as np
-import pandas as pd
-from rich.console import Console, Group
+from rich.console import Console
 from rich.markup import escape
-from rich.table import Table
-from rich.text import Text
 
 from panel import units
 
@@ -43,7 +41,8 @@ Z90 = 1.6448536269514722
 
 def _console(stderr: bool = False) -> Console:
     probe = Console(stderr=stderr)
-    width = None if probe.is_terminal else 140
+    # a terminal (or COLUMNS) sets the width; a pipe or file gets 140 columns
+    width = None if probe.is_terminal or os.environ.get("COLUMNS", "").isdigit() else 140
     return Console(stderr=stderr, highlight=False, soft_wrap=False, width=width)
 
 
@@ -82,6 +81,9 @@ def caution() -> None:
 
 def jsonable(value):
     """``value`` with numpy / pandas / date objects turned into JSON types, NaN and inf into None."""
+    import numpy as np
+    import pandas as pd
+
     if isinstance(value, dict):
         return {str(k): jsonable(v) for k, v in value.items()}
     if isinstance(value, (list, tuple)):
@@ -110,7 +112,10 @@ def emit_json(payload: dict) -> None:
     sys.stdout.flush()
 
 
-def emit_csv(frame: pd.DataFrame) -> None:
+def emit_csv(frame) -> None:
+    """``frame`` (a DataFrame) as CSV on stdout; dates as YYYY-MM-DD where they have no time."""
+    import pandas as pd
+
     buffer = io.StringIO()
     clean = frame.copy()
     for column in clean.columns:
@@ -126,25 +131,136 @@ def emit_csv(frame: pd.DataFrame) -> None:
 # ---------------------------------------------------------------------------------------------
 # human output
 
-def table(title: str, headers, rows, caption: str | None = None, right_from: int = 1) -> Table:
-    """A titled rich table (title above, caption below, neither wrapped to the table's width);
-    columns from ``right_from`` on are right-aligned.  Cells are shown verbatim (no markup)."""
-    tab = Table(header_style="bold", expand=False)
-    for i, header in enumerate(headers):
-        tab.add_column(escape(str(header)), justify="right" if i >= right_from else "left", overflow="fold",
-                       no_wrap=i == 0)
-    for row in rows:
-        tab.add_row(*(escape(str(c)) for c in row))
-    parts = [Text(title, style="bold"), tab]
-    if caption:
-        parts.append(Text(caption, style="dim"))
-    return Group(*parts)
+#: Spaces between table columns.
+GAP = 2
+
+
+class TextTable:
+    """A titled table that fits the console: numbers never wrap.
+
+    Columns from ``right_from`` on hold numbers (right-aligned, never wrapped); the others hold text,
+    which wraps at spaces when space is short, as headers do.  When even that is too wide, columns
+    are left out in the order ``drop`` gives (default: from the right, never the first) and a note
+    names them.  riskprem lays the table out itself: rich's Table measures every cell, which took
+    seconds for a 6,000-row table.
+    """
+
+    def __init__(self, title: str, headers, rows, caption: str | None = None, right_from: int = 1,
+                 drop=None):
+        self.title, self.caption = title, caption
+        self.headers = [str(h) for h in headers]
+        self.rows = [[str(c) for c in row] for row in rows]
+        self.right_from = right_from
+        n = len(self.headers)
+        order = list(range(n - 1, 0, -1)) if drop is None else [self._index(d) for d in drop]
+        self.drop = [i for i in order if 0 <= i < n]
+
+    def _index(self, column) -> int:
+        return column if isinstance(column, int) else self.headers.index(column)
+
+    def _limits(self, j: int) -> tuple[int, int]:
+        """(narrowest, natural) width of column ``j``."""
+        cells = [row[j] for row in self.rows]
+        widest = max((len(c) for c in cells), default=0)
+        header_word = max((len(w) for w in self.headers[j].split()), default=0)
+        if j >= self.right_from:                         # numbers: whole, always
+            low = max(widest, header_word)
+        else:                                            # text: may wrap at spaces
+            word = max((len(w) for c in cells for w in c.split()), default=0)
+            low = max(header_word, min(widest, max(word, 8)))
+        return low, max(low, widest, len(self.headers[j]))
+
+    def layout(self, width: int) -> tuple[list[int], list[int], list[str]]:
+        """(kept column indices, their widths, headers of the columns left out) for ``width``."""
+        limits = [self._limits(j) for j in range(len(self.headers))]
+        keep = list(range(len(self.headers)))
+        dropped = []
+
+        def narrowest():
+            return sum(limits[j][0] for j in keep) + GAP * (len(keep) - 1)
+
+        for j in self.drop:
+            if narrowest() <= width:
+                break
+            keep.remove(j)
+            dropped.append(self.headers[j])
+        widths = [limits[j][0] for j in keep]
+        spare = width - narrowest()
+        for i, j in sorted(enumerate(keep), key=lambda e: limits[e[1]][1] - limits[e[1]][0]):
+            need = limits[j][1] - widths[i]
+            if need <= spare:                            # unwrap whole headers, smallest first
+                widths[i] += need
+                spare -= need
+        short = [i for i, j in enumerate(keep) if widths[i] < limits[j][1]]
+        while spare > 0 and short:                       # the rest shared among the others
+            for i in list(short):
+                if spare == 0:
+                    break
+                widths[i] += 1
+                spare -= 1
+                if widths[i] >= limits[keep[i]][1]:
+                    short.remove(i)
+        return keep, widths, dropped
+
+    def lines(self, width: int) -> tuple[list[str], list[str], list[str]]:
+        """(header lines, rule and body lines, dropped column headers) at ``width``."""
+        keep, widths, dropped = self.layout(width)
+
+        def render(cells: list[str], header: bool) -> list[str]:
+            parts = [(j, w, [text] if len(text) <= w else
+                      textwrap.wrap(text, w, break_long_words=True, break_on_hyphens=False) or [""])
+                     for j, w, text in zip(keep, widths, cells)]
+            height = max((len(p[2]) for p in parts), default=1)
+            out = []
+            for k in range(height):
+                pieces = []
+                for j, w, chunks in parts:
+                    # a header sits on the last lines, next to the rule; a cell on the first
+                    at = k - (height - len(chunks)) if header else k
+                    piece = chunks[at] if 0 <= at < len(chunks) else ""
+                    pieces.append(piece.rjust(w) if j >= self.right_from else piece.ljust(w))
+                out.append((" " * GAP).join(pieces).rstrip())
+            return out
+
+        head = render([self.headers[j] for j in keep], header=True)
+        body = [(" " * GAP).join("-" * w for w in widths)]
+        for row in self.rows:
+            body.extend(render([row[j] for j in keep], header=False))
+        return head, body, dropped
+
+
+def table(title: str, headers, rows, caption: str | None = None, right_from: int = 1,
+          drop=None) -> TextTable:
+    """A :class:`TextTable`: ``title`` above, ``caption`` below; columns from ``right_from`` on are
+    numbers (right-aligned, never wrapped); ``drop`` (header names or indices) says which columns go
+    first when the console is too narrow.  Cells are shown verbatim (no markup)."""
+    return TextTable(title, headers, rows, caption=caption, right_from=right_from, drop=drop)
+
+
+def _print_table(console: Console, tab: TextTable) -> None:
+    from rich.text import Text
+
+    width = console.width
+    console.print(Text(tab.title, style="bold"))
+    head, body, dropped = tab.lines(width)
+    for text in head:
+        console.print(Text(text, style="bold"), no_wrap=True, crop=False, overflow="ignore")
+    console.file.write("\n".join(body) + "\n")
+    console.file.flush()
+    if dropped:
+        console.print(Text(f"(not shown at {width} columns: {', '.join(dropped)}; use a wider terminal "
+                           "or --json)", style="dim"))
+    if tab.caption:
+        console.print(Text(tab.caption, style="dim"))
 
 
 def show(*renderables) -> None:
     console = out()
     for item in renderables:
-        console.print(item)
+        if isinstance(item, TextTable):
+            _print_table(console, item)
+        else:
+            console.print(item)
 
 
 def facts(pairs) -> None:
@@ -215,6 +331,13 @@ def short_hash(digest) -> str:
 
 
 def day(value) -> str:
-    if value is None or (not isinstance(value, str) and pd.isna(value)):
+    """A date as YYYY-MM-DD; ``-`` for None, NaN or NaT."""
+    if value is None or value != value:  # noqa: PLR0124 (NaN and NaT differ from themselves)
         return "-"
+    if isinstance(value, datetime):      # pandas Timestamps included
+        return value.date().isoformat()
+    if isinstance(value, date):
+        return value.isoformat()
+    import pandas as pd
+
     return str(pd.Timestamp(value).date())

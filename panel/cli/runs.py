@@ -3,12 +3,10 @@
 
 from __future__ import annotations
 
-import json
 from enum import Enum
 from pathlib import Path
 from typing import Annotated
 
-import pandas as pd
 import typer
 
 from panel import units
@@ -72,16 +70,50 @@ def _spec_lines(spec, settings: dict, params, ppy: int) -> list[tuple[str, str]]
                   f"{100 * spec.initial_premium.mean:g}% +- {100 * spec.initial_premium.vol:g}% a year"))
     lines.append(("window", str(settings.get("window", "expanding"))))
     lines.append(("start", "warm (recorded parameters)" if settings.get("start") else "default rule"))
+    budget = "" if spec.time_budget is None else f", time budget {spec.time_budget:g} s"
+    lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
+                                f"{spec.tol:g}/{spec.param_tol:g}, {spec.starts} start(s), std errors "
+                                f"{spec.std_errors}, path {spec.method}"))
     return lines
 
 
+def _flat(value, prefix: str, out: dict) -> None:
+    """Nested settings -> ``prefix_key`` columns (lists joined by ``;``)."""
+    if isinstance(value, dict):
+        for key, item in value.items():
+            _flat(item, f"{prefix}_{key}", out)
+    elif isinstance(value, (list, tuple)):
+        out[prefix] = ";".join(str(v) for v in value)
+    else:
+        out[prefix] = value
+
+
+def settings_columns(settings: dict) -> dict:
+    """The settings a reader compares runs by, one column each: ``spec_*`` (the recorded model
+    spec, annualised decimals), ``window``, ``warm_start`` (the start parameters themselves are in
+    ``riskprem show --json``)."""
+    settings = settings or {}
+    out = {}
+    _flat({k: v for k, v in (settings.get("spec") or {}).items()}, "spec", out)
+    out["window"] = settings.get("window")
+    out["warm_start"] = settings.get("start") is not None
+    return out
+
+
 # ---------------------------------------------------------------------------------------------
+
+def _text(value) -> str:
+    """A text cell: ``-`` for a missing value (None, NaN)."""
+    return "-" if value is None or value != value or value == "" else str(value)
+
 
 def runs(ctx: typer.Context,
          data: Annotated[str | None, typer.Option("--data", help="Only runs of this dataset (name or hash).",
                                                   show_default=False)] = None,
          as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
     """List the stored runs (vintages), oldest first."""
+    import pandas as pd
+
     from panel.store import list_runs
 
     st = state(ctx)
@@ -94,21 +126,25 @@ def runs(ctx: typer.Context,
         output.emit_json({"store": st.shown, "runs": frame})
         return
     if as_csv:
-        output.emit_csv(frame.assign(settings=[json.dumps(s, sort_keys=True) for s in frame["settings"]]))
+        flat = pd.DataFrame([settings_columns(x) for x in frame["settings"]], index=frame.index)
+        output.emit_csv(pd.concat([frame.drop(columns=["settings"]), flat], axis=1))
         return
-    rows = [(r.id, r.kind, name, output.day(r.as_of), r.label or "", r.status,
+    rows = [(r.id, r.kind, name, output.day(r.as_of), _text(r.label), r.status,
              "-" if pd.isna(r.iterations) else int(r.iterations), output.num(r.loglik), output.num(r.bic),
              output.num(r.duration_s, 1), str(r.started_utc)[:16])
             for r, name in zip(frame.itertuples(index=False), shown)]
     output.show(output.table(f"Runs in {st.shown}" + (f" (dataset {data})" if data else ""),
                              ["run", "kind", "dataset", "as of", "label", "status", "iter", "loglik", "BIC",
-                              "seconds", "started UTC"], rows, right_from=6))
+                              "seconds", "started UTC"], rows, right_from=6,
+                             drop=["started UTC", "seconds", "kind", "iter", "BIC", "label"]))
     if not rows:
         output.line("no runs yet; estimate one with `riskprem fit --data NAME`")
 
 
 def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     """One run: its record, model settings, per-asset parameters (annualised) and latest premia."""
+    import pandas as pd
+
     from panel.vintages.reproduce import run_inputs, stored_params
     from panel.store import run_tables
 
@@ -172,6 +208,16 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     output.caution()
 
 
+def _run_ppy(run: dict, layout: dict) -> int:
+    """Periods a year of a stored run: its spec's, else its dataset's."""
+    spec = (run.get("settings") or {}).get("spec") or {}
+    return int(spec.get("periods_per_year") or layout["periods_per_year"])
+
+
+#: Dates the estimates table shows by default (machine output gives all unless --last is given).
+TABLE_DATES = 12
+
+
 def estimates(
     ctx: typer.Context,
     run_id: RunArg,
@@ -179,51 +225,62 @@ def estimates(
                                                     show_default=False)] = None,
     kind: Annotated[KindOrBoth, typer.Option("--kind", help="filtered (real-time), smoothed (revised) "
                                              "or both.")] = KindOrBoth.both,
-    last: Annotated[int, typer.Option("--last", min=0, help="Only the last N dates (0 = all).")] = 12,
+    last: Annotated[int | None, typer.Option("--last", min=0, help=f"Only the last N dates (0 = all). "
+                                             f"Default: {TABLE_DATES} in the table, all with --csv or "
+                                             "--json.", show_default=False)] = None,
     as_json: JsonFlag = False, as_csv: CsvFlag = False,
 ) -> None:
-    """A run's premium estimates per asset and date (annualised %, with 90% bands)."""
-    from panel.vintages.reproduce import run_inputs
-    from panel.store import run_tables
+    """A run's premium estimates per asset and date (annualised %, with 90% bands).
+
+    The table shows the last 12 dates unless --last says otherwise; --csv and --json give every date
+    unless --last is given, and say on stderr when rows were left out.
+    """
+    from panel.store import dataset_layout, get_run, run_estimates
 
     st = state(ctx)
-    with store_for(st) as store, user_errors():
-        inputs = run_inputs(store, run_id)
-        est = run_tables(store, run_id)["estimates"]
-    ppy, assets = _ppy(inputs), list(inputs.panel.assets)
-    unknown = [a for a in asset or () if a not in assets]
-    if unknown:
-        fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(assets)}")
-    chosen = list(asset) if asset else assets
-    est = est.assign(date=pd.to_datetime(est["date"]))
-    est = est[est["asset"].isin(chosen)]
-    if last:
-        keep = sorted(est["date"].unique())[-last:]
-        est = est[est["date"].isin(keep)]
-    order = {a: i for i, a in enumerate(chosen)}
-    est = est.sort_values(["date", "asset"], key=lambda c: c.map(order) if c.name == "asset" else c)
+    machine = as_json or as_csv
+    keep = (0 if machine else TABLE_DATES) if last is None else last
     kinds = ["filtered", "smoothed"] if kind == KindOrBoth.both else [kind.value]
     columns = ["date", "asset"] + [f"{k}_{s}" for k in kinds for s in ("mean", "std")]
-    if as_json:
-        output.emit_json({"run_id": run_id, "as_of": inputs.run["as_of"], "periods_per_year": ppy,
-                          "units": output.MACHINE_UNITS, "rows": est[columns], "caution": output.CAUTION})
-        return
-    if as_csv:
-        output.emit_csv(est[columns])
+    with store_for(st) as store, user_errors():
+        run = get_run(store, run_id)
+        layout = dataset_layout(store, run["dataset_hash"])
+        unknown = [a for a in asset or () if a not in layout["assets"]]
+        if unknown:
+            fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(layout['assets'])}")
+        est, n_dates = run_estimates(store, run_id, assets=asset or None, last=keep, columns=columns)
+    ppy = _run_ppy(run, layout)
+    order = {a: i for i, a in enumerate(asset or layout["assets"])}
+    est = est.assign(_order=est["asset"].map(order)).sort_values(["date", "_order"], kind="stable")
+    est = est[columns].reset_index(drop=True)
+    shown = est["date"].nunique()
+    cut = f"the last {shown} of {n_dates} dates" if shown < n_dates else None
+    if machine:
+        if cut:
+            output.note(f"note: {cut} (--last {keep}); --last 0 gives all")
+        if as_json:
+            output.emit_json({"run_id": run_id, "as_of": run["as_of"], "periods_per_year": ppy,
+                              "units": output.MACHINE_UNITS, "dates_shown": shown, "dates_total": n_dates,
+                              "rows": est, "caution": output.CAUTION})
+        else:
+            output.emit_csv(est)
         return
     headers = ["date", "asset"]
     for k in kinds:
         headers += [f"{k}, % a year", "90% band"]
     rows = []
-    for r in est.itertuples(index=False):
-        cells = [output.day(r.date), r.asset]
+    mean = {k: est[f"{k}_mean"].to_numpy(float) for k in kinds}
+    std = {k: est[f"{k}_std"].to_numpy(float) for k in kinds}
+    for i, (d, a) in enumerate(zip(est["date"].tolist(), est["asset"].tolist())):
+        cells = [output.day(d), a]
         for k in kinds:
-            m, s = getattr(r, f"{k}_mean"), getattr(r, f"{k}_std")
-            cells += [output.num(output.premium_pct(m, ppy), 2), output.band(m, s, ppy)]
+            cells += [output.num(output.premium_pct(mean[k][i], ppy), 2), output.band(mean[k][i], std[k][i], ppy)]
         rows.append(cells)
     basis = " and ".join(f"{k} ({'real-time' if k == 'filtered' else 'revised with all data'})" for k in kinds)
     output.show(output.table(f"Run {run_id} premia, annualised % (x{ppy}), {basis}; as of "
-                             f"{output.day(inputs.run['as_of'])}", headers, rows, right_from=2))
+                             f"{output.day(run['as_of'])}", headers, rows, right_from=2,
+                             caption=None if cut is None else f"{cut}; --last N for more, 0 for all",
+                             drop=[5, 3]))
     output.caution()
 
 
@@ -241,21 +298,20 @@ def cross_section(
 ) -> None:
     """The premia at one date, ranked, with 90% bands and P(premium > 0); --pairs adds the
     probability that one premium exceeds another (from their joint posterior)."""
-    from panel.vintages.reproduce import evaluated_run
+    from panel.vintages.reproduce import run_inputs, stored_cross_section
 
     st = state(ctx)
     when = parse_date(date, "--date")
     with store_for(st) as store, user_errors():
-        result = evaluated_run(store, run_id)
-    as_of = result.dates[-1]
-    when = as_of if when is None else when
-    if when < result.dates[0] or when > as_of:
-        fail(f"--date {when.date()} is outside run {run_id}'s dates {result.dates[0].date()} to "
-             f"{as_of.date()}; give a date in that range")
-    cs = result.cross_section(when, kind.value)
+        dates = run_inputs(store, run_id).panel.dates if when is not None else None
+        if when is not None and (when < dates[0] or when > dates[-1]):
+            fail(f"--date {when.date()} is outside run {run_id}'s dates {dates[0].date()} to "
+                 f"{dates[-1].date()}; give a date in that range")
+        cs, inputs = stored_cross_section(store, run_id, when, kind.value)
+    as_of = inputs.panel.dates[-1]
     ranked = cs.table()
     matrix = cs.prob_greater.loc[list(ranked["asset"]), list(ranked["asset"])]
-    ppy = result.periods_per_year
+    ppy = _ppy(inputs)
     if as_json:
         output.emit_json({"run_id": run_id, "date": cs.date, "kind": kind.value, "as_of": as_of,
                           "periods_per_year": ppy, "units": output.MACHINE_UNITS, "ranked": ranked,
@@ -284,6 +340,8 @@ def cross_section(
 
 def _param_summary(frame: pd.DataFrame, side: str, ppy: int) -> dict[str, dict]:
     """Per asset, from parameter_changes rows: loading(s), own premium vol, return vol (annualised)."""
+    import pandas as pd
+
     out: dict[str, dict] = {}
     for r in frame.itertuples(index=False):
         value = getattr(r, f"value_{side}")
@@ -306,21 +364,32 @@ def diff(ctx: typer.Context,
          run_b: Annotated[int, typer.Argument(help="Second run id.", show_default=False)],
          as_json: JsonFlag = False, as_csv: CsvFlag = False) -> None:
     """Two runs side by side: fit statistics, settings that differ, latest premia and parameters."""
-    from panel.vintages.reproduce import run_inputs
+    import pandas as pd
+
+    from panel.vintages.reproduce import run_inputs, stored_params
     from panel.store import run_query, run_tables
 
     st = state(ctx)
     with store_for(st) as store, user_errors():
         inputs = [run_inputs(store, run_a), run_inputs(store, run_b)]
-        est = [run_tables(store, r)["estimates"] for r in (run_a, run_b)]
+        params = [stored_params(store, i) for i in inputs]
+        est = [run_tables(store, r, kinds=("estimates",))["estimates"] for r in (run_a, run_b)]
         changes = run_query(store, "parameter_changes", {"run_a": run_a, "run_b": run_b})
     runs_ = [i.run for i in inputs]
     ppy = [_ppy(i) for i in inputs]
+    # compare the settings as they resolve on each run's data (auto choices filled in, volatilities
+    # in today's convention), so two records of the same model are not "different"
+    lines = [dict(_spec_lines(i.spec, i.run["settings"] or {}, p, y)) for i, p, y in zip(inputs, params, ppy)]
+    if runs_[0]["dataset_hash"] != runs_[1]["dataset_hash"]:
+        for side, run in zip(lines, runs_):
+            side["dataset"] = output.short_hash(run["dataset_hash"])
+    keys = list(dict.fromkeys([*lines[0], *lines[1]]))
+    settings = [{"setting": k, "run_a": lines[0].get(k, "-"), "run_b": lines[1].get(k, "-")}
+                for k in keys if lines[0].get(k) != lines[1].get(k)]
+    changed = [row["setting"] for row in settings]
     spec_a = (runs_[0]["settings"] or {}).get("spec", {})
     spec_b = (runs_[1]["settings"] or {}).get("spec", {})
-    changed = sorted(k for k in set(spec_a) | set(spec_b) if spec_a.get(k) != spec_b.get(k))
-    if runs_[0]["dataset_hash"] != runs_[1]["dataset_hash"]:
-        changed.insert(0, "dataset")
+    recorded_only = sorted(k for k in set(spec_a) | set(spec_b) if spec_a.get(k) != spec_b.get(k))
     latest = []
     for e, run in zip(est, runs_):
         e = e.assign(date=pd.to_datetime(e["date"]))
@@ -345,7 +414,9 @@ def diff(ctx: typer.Context,
                           "runs": [{k: r[k] for k in ("id", "kind", "label", "dataset_hash", "as_of", "status",
                                                       "loglik", "aic", "bic", "n_params", "iterations")}
                                    for r in runs_],
-                          "settings_changed": changed, "common_date": common, "periods_per_year": ppy,
+                          "settings_changed": changed, "settings": settings,
+                          "recorded_spec_keys_differing": recorded_only, "common_date": common,
+                          "periods_per_year": ppy,
                           "units": output.MACHINE_UNITS, "premia": premia, "parameters": changes,
                           "caution": output.CAUTION})
         return
@@ -366,7 +437,13 @@ def diff(ctx: typer.Context,
             a, b = output.num(a), output.num(b)
         rows.append((title, a if a is not None else "-", b if b is not None else "-"))
     output.show(output.table(f"Run {run_a} vs run {run_b}", ["", f"run {run_a}", f"run {run_b}"], rows))
-    output.line("settings that differ: " + (", ".join(changed) if changed else "none"))
+    if settings:
+        output.show(output.table("Settings that differ (as resolved on each run's data)",
+                                 ["setting", f"run {run_a}", f"run {run_b}"],
+                                 [(r["setting"], r["run_a"], r["run_b"]) for r in settings], right_from=3))
+    else:
+        output.line("settings that differ: none" + (f" (recorded differently but the same model: "
+                                                    f"{', '.join(recorded_only)})" if recorded_only else ""))
     if ppy[0] != ppy[1]:
         output.line(f"note: the runs have different periods a year ({ppy[0]} and {ppy[1]})")
     rows = []
@@ -450,6 +527,8 @@ def plot(
     as_json: JsonFlag = False,
 ) -> None:
     """Draw a PNG chart of a run (annualised %, 90% bands, as-of date in the title)."""
+    import pandas as pd
+
     from panel import plots
     from panel.vintages.reproduce import evaluated_run, run_inputs, vintage_history
     from panel.store import run_tables

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 from typing import Annotated
 
-import pandas as pd
 import typer
 
 from panel.cli import output
@@ -110,6 +109,8 @@ def query(
 
 
 def _cell(value) -> str:
+    import pandas as pd
+
     if isinstance(value, pd.Timestamp):
         return output.day(value) if value == value.normalize() else str(value)
     if isinstance(value, float):

@@ -121,14 +121,15 @@ class Plan:
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,
                                 data=self.data, h_parts=h_parts).estep
 
-    def report(self, Sigma, H, Lambda=None, cov_at=()) -> Smoothed:
+    def report(self, Sigma, H, Lambda=None, cov_at=(), only_cov=False) -> Smoothed:
         """Per-date filtered/smoothed/predicted moments (factor paths when ``Lambda`` is given),
-        without EM moments."""
+        without EM moments; ``only_cov``: the final stretch's moments at ``cov_at`` only (the
+        other dates of the stretch are NaN; the dense path computes every date anyway)."""
         if self.data is None:
             return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, Lambda=Lambda,
                                   cov_at=cov_at, want_estep=False)
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, Lambda=Lambda,
-                                cov_at=cov_at, want_estep=False, data=self.data)
+                                cov_at=cov_at, want_estep=False, data=self.data, only_cov=only_cov)
 
 
 def estep(Y, Sigma, H, scale2, init, method: str = "auto") -> EStep:

@@ -245,8 +245,10 @@ class _Tail:
             out["cov"] = _sym(full)
         return out
 
-    def report(self, Y, H, Sigma, prior, cov_at):
-        """Per-date arrays (L, N) and (L, k) on the stretch, plus full covariances at ``cov_at``."""
+    def report(self, Y, H, Sigma, prior, cov_at, only_cov=False):
+        """Per-date arrays (L, N) and (L, k) on the stretch, plus full covariances at ``cov_at``;
+        ``only_cov``: the dates of ``cov_at`` only (the others stay NaN; a cross-section needs one
+        date, and every date costs O(N^2))."""
         L, N, k, a = self.L, self.N, self.k, self.a
         ch = self.ch
         arr = {key: np.full((L, N), np.nan) for key in ("fm", "fv", "sm", "sv", "pm", "pv", "iv", "inn")}
@@ -265,7 +267,7 @@ class _Tail:
             ZPZ_s = self.coupling + np.diag(ch.first_var)          # Z P* Z'
         else:
             ZPZ_s = ch.first_var
-        for tau in range(L):
+        for tau in (sorted(t - a for t in cov_at if t >= a) if only_cov else range(L)):
             t = a + tau
             want_cov = t in cov_at
             sm = self._moments(tau, alpha[tau], g_path[tau], r_s[tau], self.m_star, self.P_star,
@@ -341,13 +343,13 @@ def _prior(Y, Sigma, H, s2, init, Lambda, a):
 
 def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
                      want_estep=True, want_report=True, data: StretchData | None = None,
-                     h_parts=None) -> Smoothed:
+                     h_parts=None, only_cov=False) -> Smoothed:
     """Same contract and result as :func:`panel.kalman.dense.dense_smoother` (to rounding).
 
     ``data`` : the final stretch's :class:`StretchData` (built here when None; a fit builds it
     once); ``h_parts = (B, psi)`` when ``H = B B' + diag(psi)`` (cheaper eigenproblem, see
     :func:`simultaneous_diagonalisation`); ``want_report=False`` skips the per-date arrays of the
-    stretch (E-step only).
+    stretch (E-step only); ``only_cov=True`` fills the stretch's per-date arrays at ``cov_at`` only.
     """
     Y = np.asarray(Y, dtype=float)
     Sigma = np.asarray(Sigma, dtype=float)
@@ -386,7 +388,7 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
         nan_t = np.full((T, N), np.nan)
         return Smoothed(loglik, nan_t, nan_t, nan_t, nan_t, nan_t, nan_t, nan_t, nan_t,
                         *(np.zeros((T, k)),) * 4, estep=estep)
-    arr, covs = tail.report(Y, H, Sigma, prior, cov_at)
+    arr, covs = tail.report(Y, H, Sigma, prior, cov_at, only_cov=only_cov)
     if head is not None:
         pairs = (("fm", head.filtered_mean), ("fv", head.filtered_var), ("sm", head.smoothed_mean),
                  ("sv", head.smoothed_var), ("pm", head.predicted_mean), ("pv", head.predicted_var),

@@ -17,6 +17,7 @@ from panel.model.problem import Problem, as_panel
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec, SpecError
 from panel.model.start import perturbed_start, starting_values
+from panel.threads import blas_limited
 
 #: Free parameters above which ``std_errors="auto"`` skips the observed information.
 AUTO_SE_LIMIT = 150
@@ -32,6 +33,7 @@ def default_start(data, spec: ModelSpec | None = None) -> tuple[Params, str]:
     return starting_values(prob.Y, prob.rs), prob.rs.structure
 
 
+@blas_limited
 def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
         progress=None) -> PanelFit:
     """Fit the premium panel by EM.
@@ -165,6 +167,7 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     return {"score": score if qn else None, "bounds": bounds}
 
 
+@blas_limited
 def evaluate(data, params: Params, spec: ModelSpec | None = None) -> PanelFit:
     """Filter and smooth at given parameters (no estimation): the known-parameters filter."""
     t0 = time.perf_counter()

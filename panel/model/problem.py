@@ -14,6 +14,7 @@ from panel.model import mstep as ms
 from panel.model.params import Packer, Params
 from panel.model.spec import ModelSpec, ResolvedSpec, SpecError
 from panel.model.start import volatility_scale
+from panel.threads import blas_limited
 
 
 def as_panel(data) -> Panel:
@@ -91,12 +92,11 @@ def _check_memory(Y: np.ndarray) -> None:
                         "square of their number) or on a larger machine")
 
 
-def covariance_at(res, t: int, kind: str):
-    """(mean, cov, active mask) of the premia at date index ``t`` of the fit ``res`` (one dense pass)."""
-    prob = Problem(res.panel, res.spec)
-    p = res.params
-    out = prob.plan.report(p.Sigma, p.H, cov_at=(t,))
+@blas_limited
+def covariance_at(panel: Panel, spec: ModelSpec, params: Params, t: int, kind: str):
+    """(mean, cov, active mask) of the premia at date index ``t`` at parameters ``params``: one pass
+    that forms the moments of that date only where the path allows (the final stretch)."""
+    out = Problem(panel, spec).plan.report(params.Sigma, params.H, cov_at=(t,), only_cov=True)
     mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
     active = ~np.isnan(mean)
-    cov = out.covariances[t][kind][np.ix_(active, active)]
-    return mean[active], cov, active
+    return mean[active], out.covariances[t][kind][np.ix_(active, active)], active

@@ -11,14 +11,14 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import stats
+from scipy.special import ndtr  # the normal cdf, without importing scipy.stats
 
 from panel.data import Panel
 from panel.model.params import Params
 from panel.model.spec import ModelSpec
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(frozen=True, eq=False, repr=False)
 class CrossSection:
     """Joint posterior of all premia at one date.
 
@@ -32,13 +32,17 @@ class CrossSection:
     mean: np.ndarray
     cov: np.ndarray
 
+    def __repr__(self) -> str:
+        return (f"<CrossSection {self.kind} at {self.date.date()}, {len(self.assets)} assets; "
+                ".table() for the ranked premia>")
+
     @property
     def std(self) -> np.ndarray:
         return np.sqrt(np.diag(self.cov))
 
     @property
     def prob_positive(self) -> np.ndarray:
-        return stats.norm.cdf(self.mean / self.std)
+        return ndtr(self.mean / self.std)
 
     @property
     def prob_greater(self) -> pd.DataFrame:
@@ -46,7 +50,7 @@ class CrossSection:
         v = np.diag(self.cov)[:, None] + np.diag(self.cov)[None, :] - 2.0 * self.cov
         with np.errstate(divide="ignore", invalid="ignore"):
             z = d / np.sqrt(np.maximum(v, 0.0))
-        out = stats.norm.cdf(z)
+        out = ndtr(z)
         np.fill_diagonal(out, np.nan)
         return pd.DataFrame(out, index=list(self.assets), columns=list(self.assets))
 
@@ -57,7 +61,23 @@ class CrossSection:
         return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
 
 
-@dataclass(frozen=True, eq=False)
+def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: str = "smoothed") -> CrossSection:
+    """Joint posterior of the premia at the last date on or before ``date`` (``kind`` filtered or
+    smoothed) at parameters ``params`` -- a fit's, or a stored run's without re-running its report."""
+    from panel.model.problem import covariance_at  # the plan is built only when asked
+
+    if kind not in ("filtered", "smoothed"):
+        raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
+    date = pd.Timestamp(date)
+    t = int(panel.dates.searchsorted(date, side="right") - 1)
+    if t < 0:
+        raise ValueError(f"date {date.date()} is before the first date {panel.dates[0].date()}")
+    mean, cov, active = covariance_at(panel, spec, params, t, kind)
+    return CrossSection(date=panel.dates[t], kind=kind, assets=tuple(np.array(panel.assets)[active]),
+                        mean=mean, cov=cov)
+
+
+@dataclass(frozen=True, eq=False, repr=False)
 class PanelFit:
     """A fitted (or, with status ``fixed``, evaluated) premium panel.  See DEVELOPERS.md for the
     columns of the long tables.
@@ -66,6 +86,8 @@ class PanelFit:
     ``n_params``, ``aic``, ``bic``, ``n_iter`` (E-steps), ``converged``, ``status``, ``message``,
     ``elapsed``; tables ``estimates``, ``factors``, ``parameters``, ``trace``, ``diagnostics``.
     Settings: ``spec`` and ``start`` (warm-start parameters or None); data: ``panel``.
+    People read ``summary()`` (text; HTML in a notebook), ``annualised_estimates()`` and
+    ``annualised_parameters()`` (% a year, :mod:`panel.model.summary`).
     """
 
     panel: Panel
@@ -118,16 +140,34 @@ class PanelFit:
                 "parameters": self.parameters, "em_trace": self.trace,
                 "diagnostics": self.diagnostics}
 
+    def summary(self) -> str:
+        """Data, model, status, fit statistics and the latest premia (% a year), in a few lines."""
+        from panel.model.summary import summary_text
+
+        return summary_text(self)
+
+    def _repr_html_(self) -> str:
+        from panel.model.summary import summary_html
+
+        return summary_html(self)
+
+    def __repr__(self) -> str:
+        from panel.model.summary import short_repr
+
+        return short_repr(self)
+
+    def annualised_estimates(self) -> pd.DataFrame:
+        """``estimates`` with premia and stds in % a year (columns ``*_pct_a_year``; ``attrs``)."""
+        from panel.model.summary import annualised_estimates
+
+        return annualised_estimates(self)
+
+    def annualised_parameters(self) -> pd.DataFrame:
+        """Per asset: loadings, own and total premium volatility, return-shock volatility, % a year."""
+        from panel.model.summary import annualised_parameters
+
+        return annualised_parameters(self)
+
     def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
         """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
-        from panel.model.problem import covariance_at  # the plan is built only when asked
-
-        if kind not in ("filtered", "smoothed"):
-            raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
-        date = pd.Timestamp(date)
-        pos = self.dates.searchsorted(date, side="right") - 1
-        if pos < 0:
-            raise ValueError(f"date {date.date()} is before the first date {self.dates[0].date()}")
-        mean, cov, active = covariance_at(self, int(pos), kind)
-        return CrossSection(date=self.dates[pos], kind=kind, assets=tuple(np.array(self.assets)[active]),
-                            mean=mean, cov=cov)
+        return cross_section_at(self.panel, self.spec, self.params, date, kind)

@@ -42,8 +42,12 @@ from panel.vintages.inputs import parse_date
 from panel.store import Store, load_panel, run_query
 
 SE_KINDS = ("plain", "newey-west")
+#: Fewest forecasts for which the Clark-West p-value (a normal approximation) is reported as usable:
+#: 30 is common practice for a t-statistic's normal limit, not a derived threshold.  Fewer are
+#: flagged (``enough`` False) and the command line warns.
+MIN_FORECASTS = 30
 STAT_COLUMNS = ("n", "first_target", "last_target", "mean_forecast", "mean_benchmark", "mean_realized",
-                "mspe_model", "mspe_benchmark", "r2_os", "cw_mean", "cw_se", "cw_t", "cw_pvalue")
+                "mspe_model", "mspe_benchmark", "r2_os", "cw_mean", "cw_se", "cw_t", "cw_pvalue", "enough")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -165,7 +169,7 @@ def _row(frame: pd.DataFrame, se: str, lags: int | None, pooled: bool) -> dict:
             "mean_forecast": float(m.mean()), "mean_benchmark": float(b.mean()), "mean_realized": float(r.mean()),
             "mspe_model": float(np.mean((r - m) ** 2)), "mspe_benchmark": float(np.mean((r - b) ** 2)),
             "r2_os": oos_r2(r, m, b), "cw_mean": test.mean, "cw_se": test.se, "cw_t": test.t,
-            "cw_pvalue": test.pvalue}
+            "cw_pvalue": test.pvalue, "enough": len(frame) >= MIN_FORECASTS}
 
 
 def evaluate_forecasts(forecasts: pd.DataFrame, *, se: str = "plain", lags: int | None = None):
@@ -217,6 +221,7 @@ class Revisions:
     date: pd.Timestamp
     path: pd.DataFrame
     summary: pd.DataFrame
+    skip: int = 0
 
     @property
     def first_release(self) -> tuple[pd.Timestamp, float]:
@@ -235,8 +240,11 @@ class Revisions:
         return self.latest[1] - self.first_release[1]
 
 
-def revisions(store: Store, backfill: BackfillInfo, asset: str, date) -> Revisions:
-    """The revision path of ``asset`` at ``date`` and the per-asset revision summary of a backfill."""
+def revisions(store: Store, backfill: BackfillInfo, asset: str, date, skip: int = 0) -> Revisions:
+    """The revision path of ``asset`` at ``date`` and the per-asset revision summary of a backfill,
+    leaving out each asset's first ``skip`` dates (a burn-in) from the summary."""
+    if skip < 0:
+        raise BackfillError(f"skip must be >= 0 dates, got {skip}")
     day = parse_date(date, "date")
     params = {"dataset": backfill.dataset_hash, "key": backfill.key}
     path = run_query(store, "revision_path", {**params, "asset": str(asset), "date": str(day.date())})
@@ -251,6 +259,6 @@ def revisions(store: Store, backfill: BackfillInfo, asset: str, date) -> Revisio
                             f"{backfill.first_as_of.date()} to {backfill.last_as_of.date()}); pick a date "
                             f"up to {backfill.last_as_of.date()} where {asset} has data")
     path["as_of"] = pd.to_datetime(path["as_of"])
-    summary = run_query(store, "revision_summary", params)
+    summary = run_query(store, "revision_summary", {**params, "skip": int(skip)})
     return Revisions(dataset_hash=backfill.dataset_hash, key=backfill.key, asset=str(asset), date=day,
-                     path=path, summary=summary)
+                     path=path, summary=summary, skip=int(skip))

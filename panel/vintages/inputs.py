@@ -11,7 +11,6 @@ from dataclasses import dataclass
 import pandas as pd
 
 from panel.data import Panel
-from panel.model.fit import fit
 from panel.model.params import Params
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec
@@ -83,5 +82,7 @@ def vintage_inputs(store: Store, run_id: int) -> tuple[Panel, ModelSpec, Params 
 
 def rebuild_vintage(store: Store, run_id: int) -> PanelFit:
     """Re-estimate a stored vintage from its recorded inputs (:func:`vintage_inputs`)."""
+    from panel.model.fit import fit
+
     data, spec, start = vintage_inputs(store, run_id)
     return fit(data, spec, start=start)

@@ -7,7 +7,8 @@ vintage (:mod:`panel.vintages.backfill`), so one rebuild serves both.
 
 - :func:`record_fit` / :func:`store_fit`: a ``PanelFit`` -> a stored run (one transaction).
 - :func:`evaluated_run`: the stored run's filter and smoother re-run at its stored parameters (no
-  estimation) -- a ``PanelFit`` for cross-sections and plots.
+  estimation) -- a ``PanelFit`` for cross-sections and plots; :func:`stored_cross_section` computes
+  one date's cross-section only.
 - :func:`reproduce`: re-estimate the run from the stored dataset snapshot and recorded settings,
   then compare every stored number table by table (:class:`Reproduction`).
 """
@@ -22,7 +23,6 @@ import numpy as np
 import pandas as pd
 
 from panel.data import Panel
-from panel.model.fit import evaluate, fit
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec
 from panel.store import (Store, StoreError, from_fit, get_run, run_environment, run_tables,
@@ -105,7 +105,7 @@ def stored_params(store: Store, inputs: RunInputs, tables: dict | None = None):
     """The run's estimated parameters (``Params``) from its stored parameter table."""
     from panel.vintages.starts import start_from_parameters
 
-    tables = tables if tables is not None else run_tables(store, inputs.run["id"])
+    tables = tables if tables is not None else run_tables(store, inputs.run["id"], kinds=("parameters",))
     params = start_from_parameters(tables["parameters"], inputs.panel.assets)
     if params is None:
         raise StoreError(f"run {inputs.run['id']} has no complete parameter table for its assets; "
@@ -116,8 +116,21 @@ def stored_params(store: Store, inputs: RunInputs, tables: dict | None = None):
 def evaluated_run(store: Store, run_id: int) -> PanelFit:
     """The stored run filtered and smoothed again at its stored parameters (no estimation): the
     same estimates, plus what is not stored (joint cross-sections at any date)."""
+    from panel.model.fit import evaluate, fit  # the estimator, only when estimating
+
     inputs = run_inputs(store, run_id)
     return evaluate(inputs.panel, stored_params(store, inputs), inputs.spec)
+
+
+def stored_cross_section(store: Store, run_id: int, date=None, kind: str = "smoothed"):
+    """``(cross_section, inputs)``: the joint posterior of stored run ``run_id``'s premia at
+    ``date`` (default its as-of), at its stored parameters -- the same numbers as
+    ``evaluated_run(...).cross_section(date, kind)`` without re-running the whole report."""
+    from panel.model.result import cross_section_at
+
+    inputs = run_inputs(store, run_id)
+    when = inputs.panel.dates[-1] if date is None else date
+    return cross_section_at(inputs.panel, inputs.spec, stored_params(store, inputs), when, kind), inputs
 
 
 # ---------------------------------------------------------------------------------------------
@@ -278,6 +291,8 @@ def reproduce(store: Store, run_id: int, *, rtol: float = 1e-10, atol: float = 0
     ``reproduce`` whose ``parent_run`` is ``run_id`` (the store must be open read-write); otherwise
     nothing is written.
     """
+    from panel.model.fit import evaluate, fit  # the estimator, only when estimating
+
     if not (rtol >= 0 and atol >= 0):
         raise ValueError(f"tolerances must be >= 0, got rtol={rtol}, atol={atol}")
     if save:
