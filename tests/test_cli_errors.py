@@ -69,6 +69,7 @@ def test_unknown_dataset(cli_unchanged, args):
     (["plot", "1", "--out", "chart.jpg"], ["give a file name ending in .png"]),
     (["plot", "1", "--out", "no/such/folder/c.png"], ["does not exist"]),
     (["plot", "1", "--chart", "vintages", "--date", "2001-01-31"], ["outside run 1's dates"]),
+    (["plot", "1", "--chart", "vintages", "--date", "2019-06-30"], ["only one vintage", "no revision to draw"]),
     (["export", "1", "out.xlsx"], ["use a .parquet or .csv file name"]),
     (["query", "no_such_query"], ["no query 'no_such_query'"]),
     (["query", "revision_history", "--param", "dataset=trees"], ["needs parameter(s) asset, date"]),
