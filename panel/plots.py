@@ -18,6 +18,7 @@ they end (a 2020-12-31 vintage is labelled 2020-12, not placed under a 2021-01 t
 
 from __future__ import annotations
 
+import functools
 import io
 import math
 from pathlib import Path
@@ -50,6 +51,15 @@ _REFERENCE = "#1b1b1b"
 #: Distinct line colours for several assets on one chart (cycled beyond twelve).
 _SERIES = ("#1f3f8f", "#c0392b", "#2e8b57", "#8e44ad", "#d4880f", "#17808a", "#7f5539", "#d63384",
            "#556b2f", "#5c6bc0", "#a0522d", "#2f4f4f")
+
+
+def _plain_text(chart):
+    """Draw ``chart`` with user text taken literally: an asset named ``$x^$`` is not math markup."""
+    @functools.wraps(chart)
+    def drawn(*args, **kwargs):
+        with matplotlib.rc_context({"text.parse_math": False}):
+            return chart(*args, **kwargs)
+    return drawn
 
 
 class ChartError(ValueError):
@@ -138,6 +148,7 @@ def _grid_shape(n: int) -> int:
     return 1 if n == 1 else 2 if n <= 4 else 3 if n <= 12 else 4
 
 
+@_plain_text
 def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str | None = None,
                   reference: pd.DataFrame | None = None, reference_label: str = "true premium",
                   shared_scale: bool = False) -> Figure:
@@ -208,6 +219,7 @@ def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str |
     return fig
 
 
+@_plain_text
 def cross_section_chart(table: pd.DataFrame, ppy: int, date, kind: str, as_of,
                         title: str | None = None) -> Figure:
     """The premia at one date, highest at the top, with 90% intervals and P(premium > 0) beside.
@@ -268,6 +280,7 @@ def _need_vintages(count: int, what: str, date, first_as_of=None) -> None:
                          "(riskprem backfill) or pick an earlier date")
 
 
+@_plain_text
 def vintage_chart(history: pd.DataFrame, asset: str, date, ppy: int, title: str | None = None,
                   reference: float | None = None, reference_label: str = "true premium") -> Figure:
     """How the estimate of ``asset``'s premium at ``date`` moved across vintages (two or more).
@@ -303,6 +316,7 @@ def vintage_chart(history: pd.DataFrame, asset: str, date, ppy: int, title: str 
     return fig
 
 
+@_plain_text
 def vintage_lines(history: pd.DataFrame, date, ppy: int, title: str | None = None) -> Figure:
     """Several assets' smoothed premium at ``date`` in each vintage, one line per asset.
 

@@ -121,3 +121,12 @@ def test_vintage_lines_draw_one_line_per_asset():
     assert [t.get_text() for t in ax.get_legend().get_texts()] == ["<b>north</b>", "south"]
     assert np.allclose(ax.get_lines()[0].get_ydata(), [0.0, 0.12])
     plots.render(fig)
+
+
+def test_asset_names_are_drawn_literally():
+    # "$x^$" would be broken math markup; names are user data and must be drawn as written
+    est = _estimates(2, 24)
+    est["asset"] = est["asset"].map({"sleeve 01": "$x^$ carry", "sleeve 02": "50% $ bonds $"})
+    fig = plots.premium_paths(est, ["$x^$ carry", "50% $ bonds $"], 12, "2016-12-31")
+    assert [ax.get_title(loc="left") for ax in fig.axes[:2]] == ["$x^$ carry", "50% $ bonds $"]
+    assert plots.render(fig, "svg").startswith(b"<?xml")

@@ -105,17 +105,17 @@ def gather(store, run_id: int) -> ReportContent:
     as_of = result.dates[-1]
     cross_section = result.cross_section(as_of, "smoothed")  # at the cut-off smoothed = filtered
     siblings = same_model_runs(store, run["id"])
-    vintages = siblings[pd.to_datetime(siblings["as_of"]) <= pd.Timestamp(run["as_of"])]
-    vintages = vintages.rename(columns={"id": "run_id"})[["run_id", "as_of", "kind", "status", "label"]]
-    vintages = vintages.reset_index(drop=True)
+    earlier = siblings[pd.to_datetime(siblings["as_of"]) < pd.Timestamp(run["as_of"])]
+    this = pd.DataFrame([{k: run[k] for k in ("id", "as_of", "kind", "status", "label")}])
+    vintages = pd.concat([earlier[list(this.columns)], this], ignore_index=True)
+    vintages = vintages.rename(columns={"id": "run_id"})
     revision_date, revisions = None, pd.DataFrame(
         columns=["asset", "as_of", "run_id", "filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std"])
     if len(vintages) >= 2:
         revision_date = pd.Timestamp(vintages["as_of"].iloc[0])
         frames = []
         for asset in list(inputs.panel.assets)[:MAX_CHARTED]:
-            history = vintage_history(store, run["id"], asset, revision_date)
-            history = history[history["run_id"].isin(vintages["run_id"])]
+            history = vintage_history(store, run["id"], asset, revision_date, runs=list(vintages["run_id"]))
             frames.append(history.assign(asset=asset))
         revisions = pd.concat(frames, ignore_index=True)[list(revisions.columns)]
     return ReportContent(run=run, dataset=dataset, panel=inputs.panel, spec=inputs.spec,

@@ -321,9 +321,10 @@ def same_model_runs(store: Store, run_id: int) -> pd.DataFrame:
     return same.reset_index(drop=True)
 
 
-def vintage_history(store: Store, run_id: int, asset: str, date) -> pd.DataFrame:
+def vintage_history(store: Store, run_id: int, asset: str, date, runs=None) -> pd.DataFrame:
     """One asset's premium at ``date`` in every stored vintage of the same model as run ``run_id``
-    (same dataset and recorded spec; the newest run per cut-off), oldest cut-off first.
+    (same dataset and recorded spec; the newest run per cut-off), oldest cut-off first.  ``runs``:
+    the vintages' run ids instead (one per cut-off), e.g. a report's own choice.
 
     Columns: ``as_of, run_id, kind, filtered_mean, filtered_std, smoothed_mean, smoothed_std,
     revision`` (the ``revision_history`` query; per-period decimals).
@@ -331,7 +332,7 @@ def vintage_history(store: Store, run_id: int, asset: str, date) -> pd.DataFrame
     from panel.store import run_query
 
     run = get_run(store, run_id)
-    same = [int(i) for i in same_model_runs(store, run_id)["id"]]
+    same = [int(i) for i in (same_model_runs(store, run_id)["id"] if runs is None else runs)]
     history = run_query(store, "revision_history", {"dataset": run["dataset_hash"], "asset": asset,
                                                     "date": str(pd.Timestamp(date).date())})
     history = history[history["run_id"].isin(same)]
