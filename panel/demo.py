@@ -34,7 +34,7 @@ FUND = "Larkspur Bay Capital"
 DATASET_NAME = "larkspur-sleeves"
 RETURNS_FILE = "larkspur_sleeves.csv"
 TRUTH_FILE = "larkspur_true_premia.csv"
-SEED = 8
+SEED = 47
 
 
 @dataclass(frozen=True)

@@ -40,9 +40,9 @@ def quillmoor_panel(n_dates: int = 72, seed: int = 20240917, late_sleeve: str | 
 
 
 @pytest.fixture
-def sleeves_store(tmp_path):
-    """A fresh store file holding the Quillmoor panel as dataset ``quillmoor``."""
+def sleeves_store(backend):
+    """A fresh store of the test's backend holding the Quillmoor panel as dataset ``quillmoor``."""
     panel = quillmoor_panel()
-    with open_store(tmp_path / "quillmoor.duckdb") as store:
+    with open_store(backend.location("quillmoor")) as store:
         write_dataset(store, panel, NAME)
         yield store, panel

@@ -48,11 +48,27 @@ def cli_file_digest(path: Path) -> str:
     return digest.hexdigest()
 
 
+def cli_rows_digest(location: str) -> str:
+    """sha256 of every row of every table of a store, in a fixed order (what 'unchanged' means for
+    a database server, whose files are not ours to read)."""
+    from sqlalchemy import select
+
+    from panel.store import open_store, schema
+
+    digest = hashlib.sha256()
+    with open_store(location, read_only=True) as store, store.engine.connect() as conn:
+        for table in schema.metadata.sorted_tables:
+            rows = conn.execute(select(table)).all()
+            digest.update(repr((table.name, sorted(map(repr, rows)))).encode())
+    return digest.hexdigest()
+
+
 @dataclass
 class CliStore:
-    """A store file plus a runner that passes ``--store`` to every command."""
+    """A store (file path, or database URL on PostgreSQL) plus a runner that passes ``--store`` to
+    every command."""
 
-    path: Path
+    path: Path | str
     csv: Path
     runner: CliRunner
     folder: Path
@@ -65,8 +81,12 @@ class CliStore:
         head = ["--store", str(self.path), "--lock-wait", "0.3"] if store else []
         return self.runner.invoke(app, [*head, *map(str, args)], catch_exceptions=False)
 
+    @property
+    def is_duckdb(self) -> bool:
+        return isinstance(self.path, Path)
+
     def digest(self) -> str:
-        return cli_file_digest(self.path)
+        return cli_file_digest(self.path) if self.is_duckdb else cli_rows_digest(self.path)
 
     def counts(self) -> dict:
         from panel.store import open_store, store_info

@@ -109,9 +109,9 @@ VINTAGES = ["2018-06-30", "2018-12-31", "2019-06-30", "2019-12-31"]
 
 
 @pytest.fixture
-def store(tmp_path):
-    """A fresh read-write store file in tmp_path."""
-    with open_store(tmp_path / "larkspur.duckdb") as opened:
+def store(backend):
+    """A fresh read-write store of the test's backend (a file in tmp_path, or a new database)."""
+    with open_store(backend.location("larkspur")) as opened:
         yield opened
 
 

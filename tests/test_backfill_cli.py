@@ -12,14 +12,15 @@ from panel.vintages.backfill import find_backfill
 from panel.vintages.evaluation import evaluate_backfill, revisions
 from panel.store import list_runs, open_store, write_dataset
 from tests.backfill_fixtures import NAME, quillmoor_panel
+from tests.backends import BOTH
 
 QUICK = ("--max-iter", "60", "--std-errors", "never")
 CUTS = ("--start", "2023-09-30", "--end", "2023-12-31")
 
 
 @pytest.fixture
-def store_file(tmp_path):
-    path = tmp_path / "quillmoor.duckdb"
+def store_file(backend):
+    path = backend.location("quillmoor")
     with open_store(path) as store:
         write_dataset(store, quillmoor_panel(), NAME)
     return path
@@ -37,6 +38,7 @@ def runs_of(path):
         return list_runs(store)
 
 
+@BOTH
 def test_backfill_stores_vintages_resumes_and_reports_as_json(store_file):
     done = run(store_file, "backfill", "--data", NAME, *CUTS, "--chain", "2", "--workers", "1", *QUICK, "--json")
     assert done.exit_code == 0, done.output

@@ -20,6 +20,7 @@ from panel.vintages.evaluation import (clark_west, clark_west_terms, default_lag
                               oos_r2, revisions)
 from panel.store import list_runs, run_tables
 from tests.backfill_fixtures import NAME, SPEC, sleeves_store  # noqa: F401
+from tests.backends import BOTH
 
 CUTS = dict(start="2023-06-30", end="2023-11-30")
 
@@ -136,6 +137,7 @@ def test_evaluation_pairs_each_vintage_forecast_with_the_next_return_and_the_his
     assert result.pooled["r2_os"] == pytest.approx(oos_r2(want["realized"], want["forecast"], want["benchmark"]))
 
 
+@BOTH
 def test_revisions_follow_one_premium_from_its_first_release_to_the_latest_vintage(sleeves_store):
     store, panel = sleeves_store
     backfill(store, NAME, SPEC, chain=3, **CUTS)

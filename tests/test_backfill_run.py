@@ -12,6 +12,7 @@ from panel.model.params import Params
 from panel.model.spec import ModelSpec, SpecError
 from panel.store import StoreError, list_runs, open_store, run_tables, write_dataset
 from tests.backfill_fixtures import NAME, SPEC, quillmoor_panel, sleeves_store  # noqa: F401
+from tests.backends import BOTH
 
 CUTS = dict(start="2023-07-31", end="2023-12-31")          # the last six months: 6 cut-offs
 
@@ -29,6 +30,7 @@ def _by_as_of(store):
     return {pd.Timestamp(r.as_of): run_tables(store, int(r.id)) for r in runs.itertuples()}
 
 
+@BOTH
 def test_one_vintage_per_cutoff_each_fitted_on_data_up_to_its_cutoff(sleeves_store):
     store, panel = sleeves_store
     report = backfill(store, NAME, SPEC, chain=3, **CUTS)
@@ -62,6 +64,7 @@ def test_one_vintage_per_cutoff_each_fitted_on_data_up_to_its_cutoff(sleeves_sto
         np.testing.assert_array_equal(stored["smoothed_std"].to_numpy(), direct["smoothed_std"].to_numpy())
 
 
+@BOTH
 def test_every_recorded_vintage_is_rebuilt_exactly_from_the_store(sleeves_store):
     store, panel = sleeves_store
     backfill(store, NAME, SPEC, chain=2, every=2, start="2023-03-31", end="2023-12-31", window="rolling:30")
@@ -80,6 +83,7 @@ def test_every_recorded_vintage_is_rebuilt_exactly_from_the_store(sleeves_store)
         assert rebuilt.loglik == row.loglik and rebuilt.n_iter == row.iterations
 
 
+@BOTH
 def test_running_again_skips_stored_cutoffs_and_extending_fits_only_new_ones(sleeves_store):
     store, panel = sleeves_store
     backfill(store, NAME, SPEC, chain=3, start="2023-07-31", end="2023-10-31")

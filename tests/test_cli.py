@@ -11,6 +11,7 @@ import pytest
 
 from tests.cli_helpers import CLI_ASSETS, CLI_FIT_OPTIONS, cli_small_frame, cli_write_csv
 from panel.cli.output import CAUTION
+from tests.backends import BOTH
 
 
 def _json(result) -> dict:
@@ -37,6 +38,7 @@ def test_ingest_prints_hash_shape_range_frequency_and_warnings(cli_store, tmp_pa
     assert "'Empty' has no values; dropped" in done.stdout
 
 
+@BOTH
 def test_ingest_json_and_datasets(cli_store):
     facts = _json(cli_store.invoke("ingest", cli_store.csv, "--name", "again", "--units", "percent", "--json"))
     assert facts["n_assets"] == 5 and facts["n_dates"] == 60 and facts["frequency"] == "M"
@@ -69,6 +71,7 @@ def test_fit_prints_run_status_fit_statistics_and_latest_premia(cli_store):
     assert runs[-1]["as_of"] == "2019-03-31" and runs[-1]["kind"] == "fit"
 
 
+@BOTH
 def test_fit_json_has_run_id_loglik_convergence_and_no_caution_line(cli_store):
     summary = _json(cli_store.invoke("fit", "--data", "trees", *CLI_FIT_OPTIONS, "--json"))
     assert summary["run_id"] == 3
@@ -115,6 +118,7 @@ def test_fit_file_ingests_the_file_as_a_dataset_first(cli_store, tmp_path):
 # ---------------------------------------------------------------------------------------------
 # reading runs
 
+@BOTH
 def test_runs_table_csv_and_dataset_filter(cli_store):
     table = cli_store.invoke("runs")
     assert table.exit_code == 0
@@ -157,6 +161,7 @@ def test_show_human_lists_parameters_annualised(cli_store):
     assert "sqrt(q x 12^3)" in done.stdout and "sqrt(h x 12)" in done.stdout and CAUTION in done.stdout
 
 
+@BOTH
 def test_estimates_filters_assets_and_dates_and_annualises(cli_store):
     rows = _json(cli_store.invoke("estimates", "1", "--asset", "Birch", "--last", "3", "--json"))["rows"]
     assert [r["date"] for r in rows] == ["2019-10-31", "2019-11-30", "2019-12-31"]
@@ -191,6 +196,7 @@ def test_cross_section_ranks_and_pairwise_probabilities(cli_store):
     assert res["mean"] == pytest.approx(list(cs.mean), rel=1e-12)
 
 
+@BOTH
 def test_cross_section_matches_the_stored_estimates(cli_store):
     res = _json(cli_store.invoke("cross-section", "1", "--date", "2017-05-31", "--kind", "filtered", "--json"))
     est = _json(cli_store.invoke("estimates", "1", "--last", "0", "--kind", "filtered", "--json"))["rows"]
@@ -212,6 +218,7 @@ def test_diff_shows_both_runs_side_by_side(cli_store):
     assert res["settings_changed"] == []
 
 
+@BOTH
 def test_export_writes_csv_and_parquet(cli_store, tmp_path):
     done = cli_store.invoke("export", "1", tmp_path / "est.parquet")
     assert done.exit_code == 0 and CAUTION in done.stdout
@@ -246,6 +253,7 @@ def test_report_writes_one_html_file(cli_store, tmp_path):
     assert res["path"] == str(tmp_path / "run2.html") and res["bytes"] > 10_000
 
 
+@BOTH
 def test_query_list_and_run(cli_store):
     listed = _json(cli_store.invoke("query", "--list", "--json"))["queries"]
     assert "revision_history" in {q["name"] for q in listed}
@@ -256,6 +264,7 @@ def test_query_list_and_run(cli_store):
     assert "dataset_runs (2 rows" in table.stdout and CAUTION in table.stdout
 
 
+@BOTH
 def test_store_info_and_upgrade(cli_store, tmp_path):
     info = _json(cli_store.invoke("store", "info", "--json"))
     assert info["counts"]["runs"] == 2 and info["schema_version"] == info["code_schema_version"]
@@ -279,6 +288,7 @@ def test_store_info_and_upgrade(cli_store, tmp_path):
     assert res["from_version"] == 1 and res["to_version"] == info["code_schema_version"]
 
 
+@BOTH
 def test_reproduce_exact_and_writes_nothing_unless_saved(cli_store):
     before = cli_store.digest()
     done = cli_store.invoke("reproduce", "2")

@@ -66,7 +66,7 @@ def test_known_parameter_filter_two_steps_by_hand():
     ({"fixed": {"premium_drift": 0.1}}, "cannot fix 'premium_drift'"),
     ({"fixed": {"premium_vol:Copper": 0.1}}, "no asset 'Copper'"),
     ({"return_shocks": "full", "fixed": {"return_vol": 0.1}}, "return_vol can be fixed only"),
-    ({"max_premium_vol": -1.0}, "max_premium_vol must be a positive"),
+    ({"max_premium_vol": -1.0}, "max_premium_vol must be between"),
 ])
 def test_bad_settings_give_one_line(kwargs, needle):
     idx = pd.date_range("2001-01-31", periods=30, freq="ME")
@@ -249,3 +249,35 @@ def test_multi_start_keeps_the_best_and_is_deterministic():
     assert "best of 3 starts" in three.message and "reached it" in three.message
     with pytest.raises(panel.SpecError, match="starts"):
         panel.fit(frame, panel.ModelSpec(starts=0))
+
+
+@pytest.mark.parametrize("settings, needle", [
+    ({"max_premium_vol": 1e-300}, "max_premium_vol must be between"),
+    ({"max_premium_vol": 1e308}, "max_premium_vol must be between"),
+    ({"fixed": {"own_premium_vol": 1e-300}}, "must be 0 or between"),
+    ({"fixed": {"return_vol": 0.0}}, "fixed return_vol must be between"),
+    ({"fixed": {"return_vol": 1e308}}, "fixed return_vol must be between"),
+    ({"premium_prior": panel.Prior(1e308, 10)}, "premium_prior vol"),
+    ({"premium_prior": panel.Prior(0.01, 1e308)}, "premium_prior weight"),
+    ({"initial_premium": panel.InitialPremium(0.05, 1e308)}, "initial_premium vol"),
+    ({"time_budget": float("nan")}, "time_budget"),
+    ({"time_budget": 0.0}, "time_budget"),
+    ({"return_factors": 9}, "not identified with 5 assets"),
+    ({"return_factors": 3}, "use at most 2"),
+    ({"return_factors": -1}, "return_factors must be"),
+])
+def test_settings_that_would_break_the_estimator_are_refused_in_one_line(settings, needle):
+    frame = pd.DataFrame(np.random.default_rng(0).normal(0.005, 0.04, (60, 5)),
+                         index=pd.date_range("2000-01-31", periods=60, freq="ME"), columns=list("abcde"))
+    with pytest.raises(panel.SpecError) as err:
+        panel.fit(frame, panel.ModelSpec(**settings))
+    assert needle in str(err.value) and "\n" not in str(err.value)
+
+
+def test_a_panel_too_large_for_memory_is_refused_with_the_figure():
+    # 20,000 assets x 30 dates: about 30 work arrays of 20,000 x 20,000 (3.2 GB each), more than any
+    # machine this runs on has; refused before anything is allocated, with the figure.
+    frame = pd.DataFrame(np.random.default_rng(0).normal(0.0, 0.04, (30, 20000)),
+                         index=pd.date_range("2000-01-31", periods=30, freq="ME"))
+    with pytest.raises(panel.SpecError, match=r"needs about 9\d\.\d GB of memory and \d+\.\d GB are available"):
+        panel.fit(frame)

@@ -14,7 +14,7 @@ def test_quick_benchmark_json(tmp_path):
     assert proc.returncode == 0, proc.stderr
     assert "E-step vs statsmodels smoother" in proc.stdout
     res = json.loads(out.read_text())
-    assert set(res) == {"meta", "compare", "scale"}
+    assert set(res) == {"meta", "compare", "scale", "ragged", "ragged_fit"}
     assert {r["pattern"] for r in res["compare"]} == {"balanced", "staircase"}
     for row in res["compare"]:
         assert "error" not in row, row
@@ -24,6 +24,12 @@ def test_quick_benchmark_json(tmp_path):
             assert key in row
         assert row["method"] == "stretch"
         assert row["loglik_rel_diff"] < 1e-8
-    for row in res["scale"]:
+    for row in res["scale"] + res["ragged_fit"]:
         assert "error" not in row, row
         assert row["peak_rss_mb"] > 0 and row["fit_esteps"] >= 1
+    assert {r["pattern"] for r in res["ragged"]} == {"balanced", "staircase", "exits", "last_cell",
+                                                     "gaps_0.5", "gaps_2"}
+    for row in res["ragged"]:
+        assert "error" not in row, row
+        assert row["loglik_rel_diff"] < 1e-8          # statsmodels' exact diffuse smoother
+        assert row["missing_cells"] > 0 or row["pattern"] == "balanced"

@@ -10,11 +10,13 @@ from panel.store import schema
 from panel.store.migrate import apply_migrations
 from panel.store.writer import _check_tables, _run_row, insert_dataset, insert_run
 from tests.store_fixtures import VINTAGES, result_tables, run_record, sleeves_panel
+from tests.backends import BOTH
 
 
-def _version_one_store(path):
-    """A store at schema version 1 holding the Larkspur panel and three vintages."""
-    engine = create_engine(f"duckdb:///{path}")
+def _version_one_store(location):
+    """A store at schema version 1 holding the Larkspur panel and three vintages (``location``: a
+    DuckDB file path or a database URL)."""
+    engine = create_engine(location if "://" in str(location) else f"duckdb:///{location}")
     apply_migrations(engine, target=1)
     panel = sleeves_panel()
     with engine.begin() as conn:
@@ -40,8 +42,9 @@ def _snapshot(store):
     return out
 
 
-def test_upgrade_from_version_one_keeps_every_row(tmp_path):
-    path = tmp_path / "v1.duckdb"
+@BOTH
+def test_upgrade_from_version_one_keeps_every_row(backend):
+    path = backend.location("v1")
     panel, digest = _version_one_store(path)
     with open_store(path) as old:
         assert old.schema_version == 1
@@ -80,8 +83,9 @@ def test_read_only_store_cannot_be_upgraded(tmp_path):
         assert old.schema_version == 1
 
 
-def test_a_failing_migration_leaves_the_store_at_its_version(tmp_path, monkeypatch):
-    path = tmp_path / "v1.duckdb"
+@BOTH
+def test_a_failing_migration_leaves_the_store_at_its_version(backend, monkeypatch):
+    path = backend.location("v1")
     _version_one_store(path)
     from panel.store import migrate
 

@@ -8,6 +8,7 @@ import pytest
 from panel.store import StoreError, list_queries, run_query, write_run
 from panel.store.queries import query_parameters
 from tests.store_fixtures import VINTAGES, filled, result_tables, run_record, store  # noqa: F401
+from tests.backends import BOTH
 
 SAMPLE = {"dataset": "larkspur", "date": "2018-06-30", "asset": "credit"}
 
@@ -16,6 +17,7 @@ def _tables(panel, i):
     return result_tables(panel, VINTAGES[i], seed=i)
 
 
+@BOTH
 def test_every_query_file_runs_and_returns_its_declared_columns(filled):
     store, panel, digest, ids, failed = filled
     queries = list_queries()
@@ -33,6 +35,7 @@ def test_every_query_file_runs_and_returns_its_declared_columns(filled):
         assert len(frame) > 0, info.name
 
 
+@BOTH
 def test_cross_section_takes_each_asset_from_its_newest_vintage(filled):
     store, panel, digest, ids, failed = filled
     latest = _tables(panel, 3)["estimates"]
@@ -90,6 +93,7 @@ def test_parameter_changes_pairs_parameters_and_differences(filled):
     assert len(idio) == 8 and idio["col"].isna().all() and idio["value_a"].notna().all()
 
 
+@BOTH
 def test_realtime_forecasts_pair_each_vintage_with_the_next_return(filled):
     store, panel, digest, ids, failed = filled
     got = run_query(store, "realtime_forecasts", {"dataset": "larkspur", "asset": "credit"})
@@ -109,6 +113,7 @@ def test_realtime_forecasts_pair_each_vintage_with_the_next_return(filled):
             assert pd.isna(row["target_date"]) and pd.isna(row["realized"])
 
 
+@BOTH
 def test_query_errors_are_one_line_store_errors(filled):
     store, *_ = filled
     with pytest.raises(StoreError, match="no query 'top_sleeves'; known queries: cross_section_latest"):

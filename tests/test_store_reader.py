@@ -7,8 +7,10 @@ from panel import ModelSpec, fit
 from panel.store import (StoreError, backfill_key, export_run, find_run, from_fit, get_run, list_runs,
                          load_panel, open_store, run_tables, write_dataset, write_run)
 from tests.store_fixtures import VINTAGES, filled, result_tables, run_record, sleeves_panel, store  # noqa: F401
+from tests.backends import BOTH
 
 
+@BOTH
 def test_list_runs_all_and_by_dataset(filled):
     store, panel, digest, ids, failed = filled
     other = write_dataset(store, sleeves_panel(seed=99), "larkspur_alt")
@@ -32,6 +34,7 @@ def test_unknown_run_names_the_store_and_the_command(filled):
         get_run(store, "latest")
 
 
+@BOTH
 def test_find_run_makes_backfill_idempotent(filled):
     store, panel, digest, ids, failed = filled
     settings = run_record(digest, VINTAGES[0])["settings"]
@@ -44,6 +47,7 @@ def test_find_run_makes_backfill_idempotent(filled):
     assert find_run(store, digest, backfill_key(digest, {"k": 3}), VINTAGES[0]) is None
 
 
+@BOTH
 def test_export_estimates_to_parquet_and_csv(filled, tmp_path):
     store, panel, digest, ids, failed = filled
     run_id = ids[VINTAGES[1]]
@@ -75,6 +79,7 @@ def test_export_works_from_a_read_only_store(tmp_path):
         assert len(pd.read_csv(out)) == len(run_tables(reader, run_id)["estimates"])
 
 
+@BOTH
 def test_a_real_fit_goes_in_and_comes_back(store):
     panel = sleeves_panel(sleeves=["domestic_equity", "credit", "commodities"], n_dates=36)
     digest = write_dataset(store, panel, "larkspur_core")

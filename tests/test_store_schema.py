@@ -10,6 +10,7 @@ from panel.store import schema
 from panel.store.migrate import apply_migrations, head_version, migrations
 from panel.store.connection import Store
 from tests.store_fixtures import store  # noqa: F401
+from tests.backends import BOTH
 
 
 def test_migration_files_are_numbered_from_one_and_reach_the_code_schema():
@@ -19,6 +20,7 @@ def test_migration_files_are_numbered_from_one_and_reach_the_code_schema():
     assert head_version() == schema.SCHEMA_VERSION
 
 
+@BOTH
 def test_store_built_by_migrations_matches_the_metadata(store):
     assert store.schema_version == schema.SCHEMA_VERSION
     assert schema_drift(store) == []

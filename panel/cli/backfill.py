@@ -155,7 +155,7 @@ def backfill(
     if workers is None and scheduler is None:
         workers = default_workers()
     interrupted = False
-    with store_for(st, write=True) as store, user_errors():
+    with store_for(st, write=True, hold=False) as store, user_errors():   # readers work between vintages
         plan = plan_backfill(store, data, spec, start=start, end=end, every=every,
                              window=window or "expanding", chain=chain, warm_start=warm_start, label=label)
         first, last = plan.vintages[0].as_of, plan.vintages[-1].as_of

@@ -18,7 +18,7 @@ import typer
 from panel.cli import output
 from panel.ingest import IngestError
 from panel.model.spec import SpecError
-from panel.store import StoreError, open_store, resolve_location
+from panel.store import StoreError, open_store, public_location, resolve_location
 
 #: Seconds a command waits for another process's write lock on the store before giving up.
 DEFAULT_LOCK_WAIT = 10.0
@@ -44,6 +44,11 @@ class State:
     def location(self) -> str:
         return resolve_location(self.store)
 
+    @property
+    def shown(self) -> str:
+        """The location as it may be printed: a URL's password masked."""
+        return public_location(self.location)
+
 
 def state(ctx: typer.Context | None) -> State:
     root = ctx.find_root() if ctx is not None else None
@@ -67,10 +72,11 @@ def user_errors() -> Iterator[None]:
 
 
 @contextlib.contextmanager
-def store_for(st: State, write: bool = False):
-    """Open the store read-only (default) or read-write; errors become one line, exit 1."""
+def store_for(st: State, write: bool = False, hold: bool = True):
+    """Open the store read-only (default) or read-write; errors become one line, exit 1.
+    ``hold=False``: a DuckDB file is held only while each read or write runs (long commands)."""
     with user_errors():
-        store = open_store(st.location, read_only=not write, lock_timeout=st.lock_wait)
+        store = open_store(st.location, read_only=not write, lock_timeout=st.lock_wait, hold=hold)
     try:
         yield store
     finally:

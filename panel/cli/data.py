@@ -156,7 +156,7 @@ def datasets(ctx: typer.Context, as_json: JsonFlag = False, as_csv: CsvFlag = Fa
     with store_for(st) as store, user_errors():
         frame = list_datasets(store)
     if as_json:
-        output.emit_json({"store": st.location, "datasets": frame})
+        output.emit_json({"store": st.shown, "datasets": frame})
         return
     if as_csv:
         output.emit_csv(frame)
@@ -164,7 +164,7 @@ def datasets(ctx: typer.Context, as_json: JsonFlag = False, as_csv: CsvFlag = Fa
     rows = [(output.short_hash(r.hash), r.current_names or f"({r.name})", r.frequency, r.n_assets, r.n_dates,
              f"{output.day(r.first_date)} to {output.day(r.last_date)}", r.n_runs, r.source_file or "-")
             for r in frame.itertuples(index=False)]
-    output.show(output.table(f"Datasets in {st.location}", ["hash", "name(s)", "freq", "assets", "dates",
+    output.show(output.table(f"Datasets in {st.shown}", ["hash", "name(s)", "freq", "assets", "dates",
                              "range", "runs", "source"], rows, right_from=2))
     if not rows:
         output.line("no datasets yet; store one with `riskprem ingest FILE --name NAME`")

@@ -89,6 +89,7 @@ def fit(
     written only after a successful fit, in one transaction.
     """
     from panel.model.fit import fit as estimate
+    from panel.store import json_ready
     from panel.vintages.reproduce import record_fit
 
     st: State = state(ctx)
@@ -115,6 +116,7 @@ def fit(
     vintage = _vintage(panel, cutoff, f"dataset {dataset}")
     with user_errors():
         spec.resolve(len(vintage.assets), vintage.periods_per_year, len(vintage.dates), vintage.assets)
+        json_ready(spec.to_dict(), "model settings")   # storable settings (no NaN), checked before the fit
     if store_exists(st):
         with store_for(st, write=True):
             pass  # the store is writable now: a fit that cannot be stored is not started

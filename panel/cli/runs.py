@@ -91,7 +91,7 @@ def runs(ctx: typer.Context,
     frame.insert(2, "dataset", [names.get(h, "") for h in frame["dataset_hash"]])
     shown = [_first_name(n) for n in frame["dataset"]]
     if as_json:
-        output.emit_json({"store": st.location, "runs": frame})
+        output.emit_json({"store": st.shown, "runs": frame})
         return
     if as_csv:
         output.emit_csv(frame.assign(settings=[json.dumps(s, sort_keys=True) for s in frame["settings"]]))
@@ -100,7 +100,7 @@ def runs(ctx: typer.Context,
              "-" if pd.isna(r.iterations) else int(r.iterations), output.num(r.loglik), output.num(r.bic),
              output.num(r.duration_s, 1), str(r.started_utc)[:16])
             for r, name in zip(frame.itertuples(index=False), shown)]
-    output.show(output.table(f"Runs in {st.location}" + (f" (dataset {data})" if data else ""),
+    output.show(output.table(f"Runs in {st.shown}" + (f" (dataset {data})" if data else ""),
                              ["run", "kind", "dataset", "as of", "label", "status", "iter", "loglik", "BIC",
                               "seconds", "started UTC"], rows, right_from=6))
     if not rows:

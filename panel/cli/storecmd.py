@@ -49,7 +49,7 @@ def upgrade(ctx: typer.Context, as_json: JsonFlag = False) -> None:
 
     st = state(ctx)
     if not store_exists(st):
-        fail(f"no store at {st.location}; nothing to upgrade (give --store PATH)")
+        fail(f"no store at {st.shown}; nothing to upgrade (give --store PATH)")
     with store_for(st, write=True) as store, user_errors():
         before = store.schema_version
         applied = migrate(store)

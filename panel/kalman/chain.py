@@ -70,15 +70,21 @@ class Basis:
         return self.u(np.eye(self.L)) if self.dct else self._U
 
 
-def basis_for(s2: np.ndarray) -> Basis:
-    """:class:`Basis` for ``s2``, memoised: the scale is data, fixed across the E-steps of a fit."""
-    key = np.asarray(s2, dtype=float).tobytes()
-    b = _CACHE.get(key)
+def memoised(cache: dict, size: int, build, s2: np.ndarray):
+    """``build(s2)`` memoised in ``cache`` (at most ``size`` entries, oldest dropped): the scale
+    is data, fixed across the E-steps of a fit."""
+    key = (build, np.asarray(s2, dtype=float).tobytes())
+    b = cache.get(key)
     if b is None:
-        if len(_CACHE) >= _CACHE_SIZE:
-            _CACHE.pop(next(iter(_CACHE)))
-        b = _CACHE[key] = Basis(s2)
+        if len(cache) >= size:
+            cache.pop(next(iter(cache)))
+        b = cache[key] = build(s2)
     return b
+
+
+def basis_for(s2: np.ndarray) -> Basis:
+    """:class:`Basis` for ``s2``, memoised (:func:`memoised`)."""
+    return memoised(_CACHE, _CACHE_SIZE, Basis, s2)
 
 
 @dataclass

@@ -6,19 +6,23 @@ Methods
 dense     the reference filter/smoother over the active assets, O(T (k+N)^3), any pattern.
 stretch   dense up to the panel's final stretch (the last dates with one observed set and no
           entry), decoupled scalar chains on it (:mod:`panel.kalman.stretch`); any pattern.
+segments  every long run of dates with one observed set decoupled, dense steps elsewhere, joined
+          by a forward filter and RTS smoother over the segments (:mod:`panel.kalman.segments`);
+          any pattern.  E-step only: reports take the stretch path.
 balanced  the stretch path when the whole panel is one stretch (fully balanced); refuses others.
-auto      the cheaper of dense and stretch by :func:`estimated_cost`.
+auto      the cheapest of dense, stretch and segments by :func:`estimated_cost`.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from panel.kalman import segments
 from panel.kalman.dense import dense_smoother, first_observations
 from panel.kalman.stretch import StretchData, final_stretch_start, stretch_smoother
 from panel.kalman.types import EStep, Smoothed
 
-METHODS = ("auto", "dense", "stretch", "balanced")
+METHODS = ("auto", "dense", "stretch", "segments", "balanced")
 
 # Rough per-date costs in flops-equivalents: a dense step does ~10 (k+n)^3 of small LAPACK calls
 # plus Python overhead; a decoupled date costs O(n^2) plus its share of the transforms.
@@ -27,8 +31,9 @@ _DENSE_CUBE = 10.0
 _STRETCH_OVERHEAD = 5e5     # eigenproblems, transforms and the coupling solve, per E-step
 
 
-def estimated_cost(Y, method: str, scale_varies: bool = False) -> float:
-    """Estimated cost of one E-step of ``method`` ("dense" or "stretch") on ``Y`` (T, N)."""
+def estimated_cost(Y, method: str, scale_varies: bool = False, init=None) -> float:
+    """Estimated cost of one E-step of ``method`` ("dense", "stretch" or "segments") on ``Y``
+    (T, N)."""
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape
     entry = first_observations(Y)
@@ -39,6 +44,8 @@ def estimated_cost(Y, method: str, scale_varies: bool = False) -> float:
 
     if method == "dense":
         return dense_cost(slice(None))
+    if method == "segments":
+        return segments.layout_cost(segments.layout(Y, init), n_active)
     a = final_stretch_start(Y)
     if a >= T:
         return dense_cost(slice(None))
@@ -48,8 +55,8 @@ def estimated_cost(Y, method: str, scale_varies: bool = False) -> float:
             + 3.0 * basis)
 
 
-def choose(Y, method: str, scale2=None) -> str:
-    """Resolve ``method`` to "dense" or "stretch" for the panel ``Y``."""
+def choose(Y, method: str, scale2=None, init=None) -> str:
+    """Resolve ``method`` to "dense", "stretch" or "segments" for the panel ``Y``."""
     if method not in METHODS:
         raise ValueError(f"method must be one of {', '.join(METHODS)}, got {method!r}")
     if method == "balanced":
@@ -60,8 +67,19 @@ def choose(Y, method: str, scale2=None) -> str:
     if method != "auto":
         return method
     varies = scale2 is not None and not np.all(np.asarray(scale2) == np.asarray(scale2)[0])
-    costs = {m: estimated_cost(Y, m, varies) for m in ("dense", "stretch")}
+    costs = {m: estimated_cost(Y, m, varies, init) for m in ("dense", "stretch", "segments")}
     return min(costs, key=costs.get)
+
+
+def memory_estimate(Y) -> float:
+    """Rough peak bytes of a fit on ``Y`` (T, N): per-date N x N covariances on the dates the dense
+    steps run (kept by the filter and by up to four E-step results during SQUAREM: ~4 per date),
+    about 30 N x N work arrays (eigenproblems, M-step, reporting) and ~20 (T, N) arrays.  Errs high
+    on segment paths (counts every date before the final stretch as dense)."""
+    Y = np.asarray(Y, dtype=float)
+    T, N = Y.shape
+    dense_dates = min(final_stretch_start(Y), T)
+    return 8.0 * (4.0 * dense_dates * N * N + 30.0 * N * N + 20.0 * T * N)
 
 
 class Plan:
@@ -78,9 +96,11 @@ class Plan:
         T = self.Y.shape[0]
         self.s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
         self.init = init
-        self.method = choose(self.Y, method, scale2)
-        self.data = None
-        if self.method == "stretch":
+        self.method = choose(self.Y, method, scale2, init)
+        self.data = self.segments = None
+        if self.method == "segments":
+            self.segments = segments.SegmentPlan(self.Y, self.s2, init)
+        if self.method != "dense":
             a = final_stretch_start(self.Y)
             if a < T:
                 self.data = StretchData(self.Y, self.s2, a)
@@ -88,6 +108,12 @@ class Plan:
     def estep(self, Sigma, H, h_parts=None) -> EStep:
         """Log-likelihood and EM moments at ``(Sigma, H)``; ``h_parts = (B, psi)`` when
         ``H = B B' + diag(psi)`` (a cheaper exact eigenproblem on the stretch path)."""
+        if self.segments is not None:
+            try:
+                return segments.segment_estep(self.segments, Sigma, H, h_parts=h_parts)
+            except np.linalg.LinAlgError:   # singular Sigma_OO with dormant assets: dense copes
+                return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init,
+                                      want_estep=True).estep
         if self.data is None:
             return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True).estep
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,

@@ -46,6 +46,7 @@ class Problem:
         self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
         self.h_prior = self._prior(spec.return_prior, units.return_variance)
         self.n_obs = int((~np.isnan(self.Y)).sum())
+        _check_memory(self.Y)
         self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
 
     def _prior(self, prior, to_variance):
@@ -66,6 +67,28 @@ class Problem:
         p = self.packer.unpack(theta, like)
         return ms.expected_complete_loglik_grad(self.estep(p), p, self.rs, self.packer,
                                                 self.sigma_prior, self.h_prior)
+
+
+def available_memory() -> float | None:
+    """Bytes of memory available to this process now (Linux ``MemAvailable``), or None if unknown."""
+    try:
+        with open("/proc/meminfo", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("MemAvailable:"):
+                    return float(line.split()[1]) * 1024.0
+    except OSError:
+        return None
+    return None
+
+
+def _check_memory(Y: np.ndarray) -> None:
+    """Refuse, before any allocation, a panel whose fit would not fit in memory."""
+    need, have = paths.memory_estimate(Y), available_memory()
+    if have is not None and need > 0.8 * have:
+        T, N = Y.shape
+        raise SpecError(f"a fit of {N} assets x {T} dates needs about {need / 1e9:.1f} GB of memory and "
+                        f"{have / 1e9:.1f} GB are available; fit fewer assets (the cost grows with the "
+                        "square of their number) or on a larger machine")
 
 
 def covariance_at(res, t: int, kind: str):

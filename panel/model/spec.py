@@ -204,8 +204,12 @@ class ModelSpec:
         if k > 0 and not _identifiable(N, k):
             raise SpecError(f"{k} common premium factor(s) are not identified with {N} assets; "
                             f"use fewer premium factors (0 for independent local levels)")
+        _check_ranges(self)
         r = int(self.return_factors)
         structure = self.return_shocks
+        if structure is None and r != 1 and not _identifiable(N, r):
+            raise SpecError(f"{r} return factor(s) are not identified with {N} assets; use at most "
+                            f"{_most_factors(N)}")
         if structure is None:
             structure = "factor" if _identifiable(N, r) and r >= 1 else ("full" if N == 2 else "diagonal")
         if structure not in RETURN_SHOCKS:
@@ -227,14 +231,6 @@ class ModelSpec:
         fixed_q, fixed_psi = _per_asset_fixes(self.fixed, assets, ppy, self.premium_variance)
         if fixed_psi is not None and structure == "full":
             raise SpecError("return_vol can be fixed only with return_shocks='diagonal' or 'factor'")
-        for name, value in (("max_premium_vol", self.max_premium_vol),):
-            if value is not None and not (value > 0 and math.isfinite(value)):
-                raise SpecError(f"{name} must be a positive annualised volatility, got {value}")
-        for name, prior in (("premium_prior", self.premium_prior), ("return_prior", self.return_prior)):
-            if prior is not None and not (prior.vol > 0 and prior.weight > 0):
-                raise SpecError(f"{name} needs a positive vol and weight, got {prior}")
-        if self.initial_premium is not None and not self.initial_premium.vol > 0:
-            raise SpecError("initial_premium vol must be positive")
         if self.vol_scale is not None:
             vs = self.vol_scale
             if vs.kind == "ewma" and not (vs.half_life and vs.half_life > 0):
@@ -281,9 +277,62 @@ class ResolvedSpec:
     max_sigma_diag: float | None
 
 
+#: Accepted ranges (annualised decimals), so that no setting over- or underflows the estimator:
+#: premium volatility 0.001 to 100 points a year; return volatility 0.01% to 1000% a year.
+PREMIUM_VOL_RANGE = (1e-5, 1.0)
+RETURN_VOL_RANGE = (1e-4, 10.0)
+MAX_PRIOR_WEIGHT = 1e6          # pseudo-periods
+MAX_PREMIUM_LEVEL = 10.0        # |initial premium mean|, 1000% a year
+
+
+def _in_range(name: str, value, bounds, zero_ok: bool = False) -> None:
+    lo, hi = bounds
+    ok = isinstance(value, (int, float)) and math.isfinite(value) and (
+        (zero_ok and value == 0) or lo <= value <= hi)
+    if not ok:
+        raise SpecError(f"{name} must be {'0 or ' if zero_ok else ''}between {100 * lo:g}% and {100 * hi:g}% "
+                        f"a year, got {value!r}")
+
+
+def _check_ranges(spec: "ModelSpec") -> None:
+    """One-line refusals of settings that parse but would break the estimator (zero, tiny, huge or
+    non-finite volatilities, priors and budgets)."""
+    for key, value in spec.fixed:
+        name = key.partition(":")[0]
+        if name == "own_premium_vol":
+            _in_range(f"fixed {key}", value, PREMIUM_VOL_RANGE, zero_ok=True)
+        elif name == "return_vol":
+            _in_range(f"fixed {key}", value, RETURN_VOL_RANGE)
+    if spec.max_premium_vol is not None:
+        _in_range("max_premium_vol", spec.max_premium_vol, PREMIUM_VOL_RANGE)
+    for name, prior, bounds in (("premium_prior", spec.premium_prior, PREMIUM_VOL_RANGE),
+                                ("return_prior", spec.return_prior, RETURN_VOL_RANGE)):
+        if prior is not None:
+            _in_range(f"{name} vol", prior.vol, bounds)
+            if not (math.isfinite(prior.weight) and 0 < prior.weight <= MAX_PRIOR_WEIGHT):
+                raise SpecError(f"{name} weight must be above 0 and at most {MAX_PRIOR_WEIGHT:g} "
+                                f"pseudo-periods, got {prior.weight!r}")
+    ip = spec.initial_premium
+    if ip is not None:
+        if not (math.isfinite(ip.mean) and abs(ip.mean) <= MAX_PREMIUM_LEVEL):
+            raise SpecError(f"initial_premium mean must be within +-{100 * MAX_PREMIUM_LEVEL:g}% a year, "
+                            f"got {ip.mean!r}")
+        _in_range("initial_premium vol", ip.vol, (PREMIUM_VOL_RANGE[0], MAX_PREMIUM_LEVEL))
+    if spec.time_budget is not None and not (math.isfinite(spec.time_budget) and spec.time_budget > 0):
+        raise SpecError(f"time_budget must be a positive number of seconds, got {spec.time_budget!r}")
+    if not (math.isfinite(spec.tol) and math.isfinite(spec.param_tol) and spec.param_tol > 0):
+        raise SpecError("tol and param_tol must be positive finite numbers")
+    if not isinstance(spec.return_factors, int) or spec.return_factors < 0:
+        raise SpecError(f"return_factors must be a whole number >= 0, got {spec.return_factors!r}")
+
+
+def _most_factors(n: int) -> int:
+    return max((m for m in range(1, n) if _identifiable(n, m)), default=0)
+
+
 def _identifiable(n: int, m: int) -> bool:
     """Ledermann bound for an m-factor covariance of n variables: (n - m)^2 >= n + m."""
-    return m >= 1 and (n - m) ** 2 >= n + m
+    return 1 <= m < n and (n - m) ** 2 >= n + m
 
 
 def _per_asset_fixes(fixed, assets, ppy, premium_variance):

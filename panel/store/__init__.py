@@ -12,9 +12,10 @@ Typical use::
                                    "status": "converged"}, {"estimates": frame, ...})
 """
 
-from panel.store.connection import DEFAULT_LOCATION, ENV_VAR, Store, open_store, resolve_location
-from panel.store.environment import backfill_key, run_environment
+from panel.store.connection import DEFAULT_LOCATION, ENV_VAR, open_store, public_location, resolve_location
+from panel.store.environment import backfill_key, json_ready, run_environment
 from panel.store.errors import StoreError
+from panel.store.handle import Store
 from panel.store.migrate import head_version, schema_drift, store_info, upgrade
 from panel.store.queries import QueryInfo, list_queries, run_query
 from panel.store.reader import (export_run, find_run, get_run, list_datasets, list_runs, load_panel,
@@ -23,7 +24,8 @@ from panel.store.writer import RUN_FIELDS, from_fit, write_dataset, write_run
 
 __all__ = [
     "DEFAULT_LOCATION", "ENV_VAR", "QueryInfo", "RUN_FIELDS", "Store", "StoreError", "backfill_key",
-    "export_run", "find_run", "from_fit", "get_run", "head_version", "list_datasets", "list_queries",
-    "list_runs", "load_panel", "open_store", "resolve_dataset", "resolve_location", "run_environment",
-    "run_query", "run_tables", "schema_drift", "store_info", "upgrade", "write_dataset", "write_run",
+    "export_run", "find_run", "from_fit", "get_run", "head_version", "json_ready", "list_datasets", "list_queries",
+    "list_runs", "load_panel", "open_store", "public_location", "resolve_dataset", "resolve_location",
+    "run_environment", "run_query", "run_tables", "schema_drift", "store_info", "upgrade", "write_dataset",
+    "write_run",
 ]

@@ -1,24 +1,31 @@
 """Opening a store: location resolution, the one-writer lock, schema version checks.
 
 A store is a DuckDB file (default ``./riskprem.duckdb``) or any SQLAlchemy URL
-(``duckdb:///path``, ``postgresql://...``).  DuckDB lets ONE process open a file read-write; while it
-does, other processes can open it neither read-write nor read-only.  Several read-only processes may
-share a file when no writer holds it.
+(``duckdb:///path``, ``postgresql+psycopg://user@host/db``).  DuckDB lets ONE process open a file
+read-write; while it does, other processes can open it neither read-write nor read-only.  Several
+read-only processes may share a file when no writer holds it.
+
+A password in a URL is a secret: it is used to connect and never shown.  Every message and every
+fact about the store uses :func:`public_location`, and driver messages are passed through
+:func:`panel.store.errors.first_line` with the password masked.
 """
 
 from __future__ import annotations
 
+import importlib.util
 import os
 import re
 import time
 from pathlib import Path
 
-from sqlalchemy import create_engine, event, text
-from sqlalchemy.engine import Connection, Engine, make_url
+from sqlalchemy import create_engine, event
+from sqlalchemy.engine import URL, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
-from sqlalchemy.pool import StaticPool
+from sqlalchemy.pool import NullPool, StaticPool
 
-from panel.store.errors import StoreError
+from panel.store.errors import StoreError, first_line, url_secret
+from panel.store.handle import Store
+from panel.store.migrate import apply_migrations, current_version, head_version, missing_write_privilege
 
 DEFAULT_LOCATION = "./riskprem.duckdb"
 ENV_VAR = "RISKPREM_STORE"
@@ -31,74 +38,26 @@ def resolve_location(option: str | None = None) -> str:
     return os.environ.get(ENV_VAR) or DEFAULT_LOCATION
 
 
-def _first_line(error: BaseException) -> str:
-    inner = getattr(error, "orig", None) or error
-    return (str(inner).strip().splitlines() or [type(inner).__name__])[0]
+_USERINFO = re.compile(r"://([^:/@]*):.*@")
+_QUERY_PASSWORD = re.compile(r"([?&]password=)[^&]*")
 
 
-def engine_facts(conn: Connection) -> dict:
-    """DuckDB library version and the storage version of the attached file (DuckDB only)."""
-    if conn.dialect.name != "duckdb":
-        return {"server_version": ".".join(str(p) for p in (conn.dialect.server_version_info or ()))}
-    library = conn.execute(text("SELECT library_version FROM pragma_version()")).scalar_one()
-    tags = conn.execute(text("SELECT tags FROM duckdb_databases() WHERE database_name = current_database()")
-                        ).scalar_one_or_none()
-    storage = None
-    if isinstance(tags, dict):
-        storage = tags.get("storage_version")
-        storage = storage[0] if isinstance(storage, list) and storage else storage
-    return {"duckdb_library": library, "storage_version": storage}
+def _public_url(url: URL) -> str:
+    if isinstance(url.query.get("password"), str):
+        url = url.update_query_dict({"password": "***"})
+    return url.render_as_string(hide_password=True).replace("password=%2A%2A%2A", "password=***")
 
 
-class Store:
-    """An open store: the SQLAlchemy engine plus what was learnt when opening it.
-
-    Use as a context manager or call :meth:`close`; a read-write DuckDB store holds the file lock
-    until then.
-    """
-
-    def __init__(self, engine: Engine, *, display: str, path: Path | None, read_only: bool,
-                 schema_version: int):
-        self.engine = engine
-        self.display = display
-        self.path = path
-        self.read_only = read_only
-        self.schema_version = schema_version
-
-    @property
-    def is_duckdb(self) -> bool:
-        return self.engine.dialect.name == "duckdb"
-
-    def close(self) -> None:
-        self.engine.dispose()
-
-    def __enter__(self) -> "Store":
-        return self
-
-    def __exit__(self, *exc) -> None:
-        self.close()
-
-    def __repr__(self) -> str:
-        mode = "read-only" if self.read_only else "read-write"
-        return f"Store({self.display!r}, {mode}, schema {self.schema_version})"
-
-    def require_writable(self, action: str = "write") -> None:
-        if self.read_only:
-            raise StoreError(f"store {self.display} is open read-only; open it read-write to {action}")
-
-    def require_current(self) -> None:
-        from panel.store.migrate import head_version
-
-        head = head_version()
-        if self.schema_version < head:
-            raise StoreError(f"store {self.display} has schema version {self.schema_version}, this riskprem "
-                             f"uses {head}; upgrade it with `riskprem store upgrade` (back the file up first)")
-        if self.schema_version > head:
-            raise StoreError(self.newer_message(head))
-
-    def newer_message(self, head: int) -> str:
-        return (f"store {self.display} has schema version {self.schema_version}, newer than this riskprem "
-                f"knows ({head}); install a newer riskprem to use it")
+def public_location(location: str | os.PathLike) -> str:
+    """``location`` as it may be shown: a path unchanged, a URL with any password replaced by
+    ``***`` (also when the URL cannot be parsed)."""
+    text_ = str(location)
+    if "://" not in text_:
+        return text_
+    try:
+        return _public_url(make_url(text_))
+    except ArgumentError:
+        return _QUERY_PASSWORD.sub(r"\1***", _USERINFO.sub(r"://\1:***@", text_))
 
 
 def _url_of(location: str):
@@ -106,8 +65,8 @@ def _url_of(location: str):
         try:
             url = make_url(location)
         except ArgumentError:
-            raise StoreError(f"cannot read store URL {location!r}; give a file path or a URL like "
-                             "duckdb:///path/riskprem.duckdb") from None
+            raise StoreError(f"cannot read store URL {public_location(location)!r}; give a file path or a "
+                             "URL like duckdb:///path/riskprem.duckdb") from None
         return url, (Path(url.database).resolve() if url.drivername.startswith("duckdb")
                      and url.database and url.database != ":memory:" else None)
     path = Path(location).expanduser().resolve()
@@ -120,7 +79,7 @@ def _quiet_duckdb(dbapi_connection, _record) -> None:
 
 
 def _lock_message(display: str, error: BaseException, read_only: bool, waited: float) -> str:
-    pid = re.search(r"PID (\d+)", _first_line(error))
+    pid = re.search(r"PID (\d+)", first_line(error))
     holder = f"another process (PID {pid.group(1)})" if pid else "another process"
     if read_only:
         return (f"store {display} is being written by {holder} and DuckDB cannot read a file while "
@@ -129,7 +88,30 @@ def _lock_message(display: str, error: BaseException, read_only: bool, waited: f
             "wait for it to finish (read-only commands work whenever no process is writing)")
 
 
+def _patient_connect(display: str, read_only: bool, lock_timeout: float):
+    """A ``do_connect`` hook that waits (with backoff, up to ``lock_timeout`` seconds) while another
+    process holds the DuckDB file, then raises :class:`StoreError`: every (re)opening of a store
+    that does not hold its file is as patient as the first."""
+    def do_connect(dialect, _record, cargs, cparams):
+        start = time.monotonic()
+        delay = 0.05
+        while True:
+            try:
+                return dialect.connect(*cargs, **cparams)
+            except dialect.loaded_dbapi.Error as error:
+                waited = time.monotonic() - start
+                if "lock" not in first_line(error).lower():
+                    raise
+                if waited + delay > lock_timeout:
+                    raise StoreError(_lock_message(display, error, read_only, waited)) from None
+                time.sleep(delay)
+                delay = min(delay * 2, 1.0)
+
+    return do_connect
+
+
 def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float) -> None:
+    secret = url_secret(engine.url)
     start = time.monotonic()
     delay = 0.05
     while True:
@@ -137,7 +119,7 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
             engine.connect().close()  # StaticPool keeps this one connection (and DuckDB's lock)
             return
         except DBAPIError as error:
-            line = _first_line(error)
+            line = first_line(error, secret)
             waited = time.monotonic() - start
             if "lock" in line.lower():
                 if waited + delay > lock_timeout:
@@ -150,23 +132,26 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
                                  "close it before opening it read-only or read-write") from None
             raise StoreError(f"cannot open store {display}: {line}") from None
         except (NoSuchModuleError, ImportError) as error:
-            raise StoreError(f"cannot open store {display}: {_first_line(error)}; install the driver "
+            raise StoreError(f"cannot open store {display}: {first_line(error, secret)}; install the driver "
                              "for that URL or use a DuckDB file") from None
 
 
 def open_store(location: str | os.PathLike | None = None, *, read_only: bool = False,
-               lock_timeout: float = 10.0) -> Store:
+               lock_timeout: float = 10.0, hold: bool = True) -> Store:
     """Open (and, read-write, create if new) the store at ``location`` (see :func:`resolve_location`).
 
     A new or empty DuckDB file opened read-write gets the full schema.  An existing store must be a
     riskprem store no newer than this code; an older one opens, but reading or writing runs needs
     :func:`panel.store.upgrade` first.  While another process writes a DuckDB store, opening retries
     with backoff for ``lock_timeout`` seconds, then raises :class:`StoreError`.
-    """
-    from panel.store.migrate import apply_migrations, current_version, head_version
 
+    ``hold=False`` (DuckDB files): keep the file open only while a read or a write transaction runs,
+    so other processes can read and write between them; each use waits up to ``lock_timeout``
+    seconds for the file like opening does.  A long backfill opens its store this way.  Database
+    servers need no such thing: they serve many readers and writers at once.
+    """
     url, path = _url_of(resolve_location(None if location is None else str(location)))
-    display = str(path) if path is not None else url.render_as_string(hide_password=True)
+    display = str(path) if path is not None else _public_url(url)
     kwargs: dict = {}
     if url.drivername.startswith("duckdb"):
         if path is not None:
@@ -175,28 +160,32 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
                                  "store location")
             if not path.parent.is_dir():
                 raise StoreError(f"cannot create store {path}: folder {path.parent} does not exist")
-        kwargs = {"poolclass": StaticPool,
+        kwargs = {"poolclass": StaticPool if hold else NullPool,
                   "connect_args": {"read_only": bool(read_only)}}
+    elif url.drivername.startswith("postgresql"):
+        if url.drivername == "postgresql" and importlib.util.find_spec("psycopg") is not None:
+            url = url.set(drivername="postgresql+psycopg")   # the driver of riskprem[postgres]
+        if read_only:   # the server refuses writes in every transaction of a read-only store
+            options = " ".join(filter(None, [str(url.query.get("options") or ""),
+                                             "-c default_transaction_read_only=on"]))
+            url = url.update_query_dict({"options": options})
     try:
         engine = create_engine(url, **kwargs)
     except (ArgumentError, NoSuchModuleError, ImportError) as error:
-        raise StoreError(f"cannot use store location {display!r}: {_first_line(error)}; give a file path "
-                         "or a URL like duckdb:///path/riskprem.duckdb") from None
+        raise StoreError(f"cannot use store location {display!r}: {first_line(error, url_secret(url))}; "
+                         "give a file path or a URL like duckdb:///path/riskprem.duckdb") from None
     if engine.dialect.name == "duckdb":
         event.listen(engine, "connect", _quiet_duckdb)
+        if not hold:
+            event.listen(engine, "do_connect", _patient_connect(display, read_only, lock_timeout))
     try:
         _connect(engine, display, read_only, lock_timeout)
-        with engine.connect() as conn:
-            version = current_version(conn)
-        if version is None:
-            raise StoreError(f"{display} is not a riskprem store (it has tables but no schema_version); "
-                             "give another store location")
+        try:
+            version = _prepare(engine, display, read_only)
+        except DBAPIError as error:   # e.g. a database user without the privileges it needs
+            raise StoreError(f"cannot use store {display}: {first_line(error, url_secret(url))}; ask the "
+                             "store's owner for access (README: Team store)") from None
         head = head_version()
-        if version == 0:
-            if read_only:
-                raise StoreError(f"{display} is empty, not a riskprem store; write a dataset to create it")
-            apply_migrations(engine)
-            version = head
         store = Store(engine, display=display, path=path, read_only=read_only, schema_version=version)
         if version > head:
             raise StoreError(store.newer_message(head))
@@ -204,3 +193,28 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
     except BaseException:
         engine.dispose()
         raise
+
+
+def _prepare(engine: Engine, display: str, read_only: bool) -> int:
+    """The store's schema version after creating the schema in an empty database (read-write)."""
+    with engine.connect() as conn:
+        version = current_version(conn)
+    if version is None:
+        raise StoreError(f"{display} is not a riskprem store (it has tables but no schema_version); "
+                         "give another store location")
+    if version == 0:
+        if read_only and engine.dialect.name == "postgresql":   # tables without SELECT are invisible
+            raise StoreError(f"{display} has no riskprem tables this user can see; write a dataset to create "
+                             "the store, or ask the store's owner for the reader role (README: Team store)")
+        if read_only:
+            raise StoreError(f"{display} is empty, not a riskprem store; write a dataset to create it")
+        apply_migrations(engine)
+        version = head_version()
+    if not read_only:
+        with engine.connect() as conn:
+            missing = missing_write_privilege(conn)
+        if missing is not None:
+            user = engine.url.username or "this database user"
+            raise StoreError(f"{user} may not write store {display} (no privilege on {missing}); use "
+                             "read commands, or ask the store's owner for the writer role (README: Team store)")
+    return version

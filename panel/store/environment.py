@@ -1,4 +1,4 @@
-"""What a run records about where it ran, and the backfill key.
+"""What a run records about where it ran, the backfill key, and what JSON columns accept.
 
 No SQL here: plain values for the ``runs`` row.
 """
@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import platform
 import subprocess
 import sys
@@ -14,6 +15,7 @@ from datetime import datetime, timezone
 from functools import cache
 from importlib.metadata import PackageNotFoundError, version
 
+from panel.store.errors import StoreError
 from panel.store.resources import source_root
 
 
@@ -66,6 +68,33 @@ def run_environment() -> dict:
     return {**_static_environment(), "git_commit": git_commit()}
 
 
+def _non_finite(value, path: str):
+    """(path, number) of the first NaN or infinity inside ``value``, or None."""
+    if isinstance(value, float) and not math.isfinite(value):
+        return path or "(top level)", value
+    items = value.items() if isinstance(value, dict) else enumerate(value) if isinstance(value, (list, tuple)) else ()
+    for key, item in items:
+        found = _non_finite(item, f"{path}.{key}" if path else str(key))
+        if found:
+            return found
+    return None
+
+
+def json_ready(value, what: str = "settings"):
+    """``value`` as the JSON columns store it (plain dicts, lists, numbers, strings; other objects
+    as their text).  NaN and infinity are refused: JSON has no such numbers (PostgreSQL rejects them,
+    DuckDB would read them back as null), so a run whose settings hold one could not be reproduced."""
+    found = _non_finite(value, "")
+    if found:
+        raise StoreError(f"{what} hold a non-finite number at {found[0]} ({found[1]}), which cannot be "
+                         "stored as JSON; give a finite value or leave the option out")
+    try:
+        return json.loads(json.dumps(value, default=str, allow_nan=False))
+    except (TypeError, ValueError) as error:
+        raise StoreError(f"{what} cannot be stored as JSON ({error}); pass plain dicts, lists, "
+                         "numbers and strings") from None
+
+
 def canonical_json(value) -> str:
     """JSON with sorted keys and no whitespace: equal settings give equal text."""
     return json.dumps(value, sort_keys=True, separators=(",", ":"), ensure_ascii=False, default=str)
@@ -82,6 +111,6 @@ def backfill_key(dataset_hash: str, settings: dict) -> str:
     Two runs with the same key differ at most in cut-off and starting values, so a backfill that
     finds a run with its key and ``as_of`` (``find_run``) can skip that vintage.
     """
-    rest = {k: v for k, v in dict(settings).items() if k not in PER_VINTAGE_SETTINGS}
+    rest = {k: v for k, v in json_ready(dict(settings), "run settings").items() if k not in PER_VINTAGE_SETTINGS}
     text = dataset_hash + "\0" + canonical_json(rest)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()

@@ -1,4 +1,4 @@
-"""The one exception of the store layer."""
+"""The one exception of the store layer, and the one way a driver error becomes message text."""
 
 from __future__ import annotations
 
@@ -10,3 +10,19 @@ class StoreError(ValueError):
     another process, a bad location or URL, and rows that do not fit the schema.  When a write raises
     it, nothing of that write is in the store.
     """
+
+
+def first_line(error: BaseException, secret: str | None = None) -> str:
+    """The first line of a (driver) error's message, with ``secret`` (a store password) masked:
+    a message that quotes the connection string must not carry the password into output."""
+    inner = getattr(error, "orig", None) or error
+    line = (str(inner).strip().splitlines() or [type(inner).__name__])[0]
+    return line.replace(secret, "***") if secret else line
+
+
+def url_secret(url) -> str | None:
+    """The password a SQLAlchemy URL carries, in its user part or as a ``password=`` query parameter."""
+    if url.password:
+        return str(url.password)
+    value = url.query.get("password")
+    return str(value) if isinstance(value, str) and value else None

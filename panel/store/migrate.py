@@ -14,10 +14,8 @@ numbered files are easy to review and run unchanged on both databases.
 
 from __future__ import annotations
 
-import re
-from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Callable
+from typing import Callable
 
 from sqlalchemy import Boolean, Date, DateTime, Double, Integer, BigInteger, JSON, String, func, select, text
 from sqlalchemy.engine import Connection, Engine
@@ -25,49 +23,11 @@ from sqlalchemy.engine import Connection, Engine
 from panel.store import schema
 from panel.store.environment import backfill_key, utc_now
 from panel.store.errors import StoreError
-from panel.store.resources import resource_dir
+from panel.store.handle import Store
+from panel.store.versions import Migration, head_version, migrations
 
-if TYPE_CHECKING:  # pragma: no cover
-    from panel.store.connection import Store
-
-_FILE = re.compile(r"^(\d{4})_([a-z0-9_]+)\.sql$")
-
-
-@dataclass(frozen=True)
-class Migration:
-    version: int
-    description: str
-    path: Path
-
-    def statements(self, dialect: str) -> list[str]:
-        """The file's statements for ``dialect`` (``"duckdb"``, ``"postgresql"``, ...)."""
-        lines = [line for line in self.path.read_text(encoding="utf-8").splitlines()
-                 if not line.lstrip().startswith("--")]
-        body = "\n".join(lines)
-        if dialect == "postgresql":
-            body = re.sub(r"\bJSON\b", "JSONB", body)
-        return [part.strip() for part in body.split(";") if part.strip()]
-
-
-def migrations() -> list[Migration]:
-    """All migration files, in version order; their numbers must run 1, 2, 3, ... without gaps."""
-    folder = resource_dir("migrations")
-    found = []
-    for path in sorted(folder.glob("*.sql")):
-        match = _FILE.match(path.name)
-        if match is None:
-            raise StoreError(f"migration file {path} is not named NNNN_words.sql; rename it")
-        found.append(Migration(int(match.group(1)), match.group(2).replace("_", " "), path))
-    numbers = [m.version for m in found]
-    if numbers != list(range(1, len(found) + 1)):
-        raise StoreError(f"migration files in {folder} are numbered {numbers}, not 1..{len(found)}; "
-                         "fix the numbering")
-    return found
-
-
-def head_version() -> int:
-    """The newest version the migration files reach."""
-    return migrations()[-1].version
+__all__ = ["Migration", "apply_migrations", "current_version", "engine_facts", "head_version", "live_tables",
+           "migrations", "missing_write_privilege", "schema_drift", "store_info", "upgrade"]
 
 
 # ---------------------------------------------------------------------------------------------
@@ -104,6 +64,39 @@ def current_version(conn: Connection) -> int | None:
     return 0 if not tables else None
 
 
+def engine_facts(conn: Connection) -> dict:
+    """DuckDB library version and the storage version of the attached file (DuckDB only); the
+    server version elsewhere."""
+    if conn.dialect.name != "duckdb":
+        return {"server_version": ".".join(str(p) for p in (conn.dialect.server_version_info or ()))}
+    library = conn.execute(text("SELECT library_version FROM pragma_version()")).scalar_one()
+    tags = conn.execute(text("SELECT tags FROM duckdb_databases() WHERE database_name = current_database()")
+                        ).scalar_one_or_none()
+    storage = None
+    if isinstance(tags, dict):
+        storage = tags.get("storage_version")
+        storage = storage[0] if isinstance(storage, list) and storage else storage
+    return {"duckdb_library": library, "storage_version": storage}
+
+
+#: Tables a writer inserts into (the others change only in migrations, which the owner runs).
+_WRITTEN = ("datasets", "dataset_names", "dataset_assets", "dataset_dates", "dataset_values", "runs",
+            "parameters", "estimates", "factor_paths", "em_trace", "diagnostics")
+
+
+def missing_write_privilege(conn: Connection) -> str | None:
+    """On PostgreSQL: the first table (or the run-id sequence) the connected user may not write,
+    or None; on DuckDB always None (the file lock is the only gate)."""
+    if conn.dialect.name != "postgresql":
+        return None
+    if not conn.execute(text("SELECT has_sequence_privilege('run_id_seq', 'USAGE')")).scalar_one():
+        return "sequence run_id_seq (USAGE)"
+    for name in _WRITTEN:
+        if not conn.execute(text("SELECT has_table_privilege(:t, 'INSERT')"), {"t": name}).scalar_one():
+            return f"table {name} (INSERT)"
+    return None
+
+
 _FAMILIES = {
     "bigint": "bigint", "int8": "bigint",
     "integer": "integer", "int4": "integer", "int": "integer",
@@ -124,7 +117,7 @@ def _family_of(column_type) -> str:
     return type(column_type).__name__.lower()
 
 
-def schema_drift(store: "Store") -> list[str]:
+def schema_drift(store: Store) -> list[str]:
     """Differences between the store's tables and ``schema.metadata`` (empty = none): column names
     and order, type family, nullability and primary keys."""
     with store.engine.connect() as conn:
@@ -171,8 +164,6 @@ _AFTER: dict[int, Callable[[Connection], None]] = {2: _fill_backfill_keys}
 
 
 def _creation_meta(conn: Connection) -> None:
-    from panel.store.connection import engine_facts
-
     import panel
 
     facts = {"created_utc": utc_now().isoformat(timespec="seconds"), "created_by": f"riskprem {panel.__version__}",
@@ -207,7 +198,7 @@ def apply_migrations(engine: Engine, target: int | None = None) -> list[int]:
     return applied
 
 
-def upgrade(store: "Store", target: int | None = None) -> list[int]:
+def upgrade(store: Store, target: int | None = None) -> list[int]:
     """Migrate an existing store in place to ``target`` (default: this riskprem's schema); returns
     the versions applied (empty when already current).  Existing rows are kept."""
     store.require_writable("upgrade")
@@ -225,12 +216,10 @@ def upgrade(store: "Store", target: int | None = None) -> list[int]:
     return applied
 
 
-def store_info(store: "Store") -> dict:
+def store_info(store: Store) -> dict:
     """Facts about a store: location, schema version (and this riskprem's), DuckDB library and
     storage version, file size in bytes (database plus write-ahead log), row count per table, and the
     ``store_meta`` entries recorded at creation and upgrade."""
-    from panel.store.connection import engine_facts
-
     with store.engine.connect() as conn:
         present = live_tables(conn)
         counts = {t.name: int(conn.execute(select(func.count()).select_from(t)).scalar_one())

@@ -20,7 +20,7 @@ from sqlalchemy import text
 from sqlalchemy.exc import DBAPIError
 
 from panel.store._io import read_frame
-from panel.store.connection import Store, _first_line
+from panel.store.handle import Store
 from panel.store.errors import StoreError
 from panel.store.resources import resource_dir
 
@@ -115,4 +115,4 @@ def run_query(store: Store, name: str, params: dict | None = None) -> pd.DataFra
         with store.engine.connect() as conn:
             return read_frame(conn, text(info.sql), params)
     except DBAPIError as error:
-        raise StoreError(f"query {name!r} failed: {_first_line(error)}; check the parameter values") from None
+        raise StoreError(f"query {name!r} failed: {store.error_line(error)}; check the parameter values") from None

@@ -13,7 +13,7 @@ from sqlalchemy import func, select
 from panel.data import Panel, canonical_hash
 from panel.store import schema
 from panel.store._io import read_frame
-from panel.store.connection import Store
+from panel.store.handle import Store
 from panel.store.errors import StoreError
 
 #: Statuses that do not count as a finished vintage (``find_run`` ignores them).

@@ -3,7 +3,6 @@
 
 from __future__ import annotations
 
-import json
 from datetime import date, datetime, timedelta
 
 import numpy as np
@@ -15,8 +14,8 @@ from sqlalchemy.exc import DBAPIError
 from panel.data import Panel, canonical_hash
 from panel.store import schema
 from panel.store._io import insert_frame
-from panel.store.connection import Store, _first_line
-from panel.store.environment import backfill_key, run_environment, utc_now
+from panel.store.handle import Store
+from panel.store.environment import backfill_key, json_ready, run_environment, utc_now
 from panel.store.errors import StoreError
 
 #: ``runs`` columns a caller may give (``id`` comes from the sequence).
@@ -42,14 +41,6 @@ def _panel_rows(panel: Panel) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]
     return assets, dates, cells
 
 
-def _json_ready(value, what: str):
-    try:
-        return json.loads(json.dumps(value, default=str))
-    except (TypeError, ValueError) as error:
-        raise StoreError(f"{what} cannot be stored as JSON ({error}); pass plain dicts, lists, "
-                         "numbers and strings") from None
-
-
 def write_dataset(store: Store, panel: Panel, name: str) -> str:
     """Store ``panel`` under ``name``; returns its hash.
 
@@ -63,7 +54,7 @@ def write_dataset(store: Store, panel: Panel, name: str) -> str:
         with store.engine.begin() as conn:
             return insert_dataset(conn, panel, name)
     except DBAPIError as error:
-        raise StoreError(f"could not write dataset {name!r}, nothing was stored: {_first_line(error)}") from None
+        raise StoreError(f"could not write dataset {name!r}, nothing was stored: {store.error_line(error)}") from None
 
 
 def insert_dataset(conn: Connection, panel: Panel, name: str) -> str:
@@ -75,7 +66,7 @@ def insert_dataset(conn: Connection, panel: Panel, name: str) -> str:
     if panel.hash != digest:
         raise StoreError(f"panel hash {panel.hash[:12]} does not match its values ({digest[:12]}); "
                          "build it with Panel.from_frame or panel.ingest")
-    meta = _json_ready(dict(panel.meta), "panel.meta")
+    meta = json_ready(dict(panel.meta), "panel.meta")
     ds, names = schema.datasets, schema.dataset_names
     if conn.execute(select(ds.c.hash).where(ds.c.hash == digest)).first() is None:
         assets, dates, cells = _panel_rows(panel)
@@ -146,7 +137,7 @@ def _run_row(run: dict) -> dict:
     row = {**run_environment(), **{k: v for k, v in run.items()}}
     if not isinstance(row["settings"], dict):
         raise StoreError(f"run settings must be a dict, not {type(row['settings']).__name__}")
-    row["settings"] = _json_ready(row["settings"], "run settings")
+    row["settings"] = json_ready(row["settings"], "run settings")
     for key in ("started_utc", "finished_utc"):
         row[key] = _utc(row.get(key), key)
     duration = row.get("duration_s")
@@ -225,7 +216,7 @@ def write_run(store: Store, run: dict, tables: dict[str, pd.DataFrame] | None = 
         with store.engine.begin() as conn:
             return insert_run(conn, row, checked, native=native)
     except DBAPIError as error:
-        raise StoreError(f"could not write the run, nothing was stored: {_first_line(error)}") from None
+        raise StoreError(f"could not write the run, nothing was stored: {store.error_line(error)}") from None
 
 
 def from_fit(fit, **run) -> tuple[dict, dict[str, pd.DataFrame]]:

@@ -58,7 +58,7 @@ from panel.vintages.errors import BackfillError
 from panel.vintages.inputs import (Window, parse_date, rebuild_vintage, vintage_inputs,  # noqa: F401 (re-exported)
                                    vintage_panel)
 from panel.vintages.pools import default_workers, open_pool  # noqa: F401 (re-exported)
-from panel.store import (Store, backfill_key, find_run, from_fit, load_panel, resolve_dataset,
+from panel.store import (Store, backfill_key, find_run, from_fit, json_ready, load_panel, resolve_dataset,
                          run_environment, run_query, run_tables, write_run)
 
 #: ``runs.kind`` of a backfill vintage.
@@ -101,10 +101,6 @@ def cutoff_dates(panel: Panel, start=None, end=None, every: int = 1) -> pd.Datet
     return dates
 
 
-def _json_ready(value):
-    return json.loads(json.dumps(value, default=str))
-
-
 def vintage_settings(fitted: PanelFit, dataset_hash: str, window) -> dict:
     """A vintage's run settings: ``fitted.settings()`` (spec, start, as_of) with the full dataset's
     hash and the window."""
@@ -116,7 +112,7 @@ def settings_key(dataset_hash: str, spec: ModelSpec | None = None, window="expan
     settings (what the store computes from a vintage's settings)."""
     settings = {"spec": (spec or ModelSpec()).to_dict(), "dataset_hash": dataset_hash,
                 "window": Window.parse(window).text}
-    return backfill_key(dataset_hash, _json_ready(settings))
+    return backfill_key(dataset_hash, json_ready(settings, "backfill settings"))
 
 
 # ---------------------------------------------------------------------------------------------
