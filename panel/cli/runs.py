@@ -483,7 +483,8 @@ def plot(
             if chart == Chart.paths:
                 chosen = list(asset) if asset else assets[:4]
                 fig = plots.premium_paths(run_tables(store, run_id)["estimates"], chosen, ppy, as_of,
-                                          title=plots.heading("Premium paths", dataset, label), shared_scale=same_scale)
+                                          title=plots.heading("Premium paths", dataset, label),
+                                          shared_scale=same_scale)
             elif chart == Chart.cross_section:
                 result = evaluated_run(store, run_id)
                 cs = result.cross_section(when, kind.value)
