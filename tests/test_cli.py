@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import html
 import json
 
 import numpy as np
@@ -238,6 +239,18 @@ def test_plot_writes_a_png(cli_store, tmp_path, chart, extra):
     assert target.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert target.stat().st_size > 10_000
     assert CAUTION in done.stdout
+
+
+def test_report_writes_one_html_file(cli_store, tmp_path):
+    target = tmp_path / "run1.html"
+    done = cli_store.invoke("report", "1", "--out", target)
+    assert done.exit_code == 0, done.output
+    assert f"wrote {target}" in done.stdout and CAUTION in done.stdout
+    page = target.read_text(encoding="utf-8")
+    assert page.startswith("<!DOCTYPE html>") and "trees" in page and page.count(html.escape(CAUTION)) == 2
+    assert 'id="vintages"' in page and "2 vintages of the same model" in page  # runs 2 and 1
+    res = _json(cli_store.invoke("report", "2", "--out", tmp_path / "run2.html", "--json"))
+    assert res["path"] == str(tmp_path / "run2.html") and res["bytes"] > 10_000
 
 
 @BOTH

@@ -42,13 +42,16 @@ def cli_unchanged(cli_store):
 
 @pytest.mark.parametrize("args", [
     ["show", "99"], ["estimates", "99"], ["cross-section", "99"], ["plot", "99"], ["reproduce", "99"],
-    ["reproduce", "99", "--save"], ["export", "99", "x.csv"], ["diff", "1", "99"],
+    ["reproduce", "99", "--save"], ["export", "99", "x.csv"], ["diff", "1", "99"], ["report", "99"],
 ])
 def test_unknown_run(cli_unchanged, args):
     if args[0] == "export":
         args = ["export", "99", str(cli_unchanged.folder / "x.csv")]
+    if args[0] == "report":
+        args = ["report", "99", "--out", str(cli_unchanged.folder / "r.html")]
     _one_line_error(cli_unchanged.invoke(*args), "no run 99", "riskprem runs")
     assert not (cli_unchanged.folder / "x.csv").exists()
+    assert not (cli_unchanged.folder / "r.html").exists()
 
 
 @pytest.mark.parametrize("args", [["fit", "--data", "oak"], ["runs", "--data", "oak"],
@@ -69,6 +72,9 @@ def test_unknown_dataset(cli_unchanged, args):
     (["plot", "1", "--out", "chart.jpg"], ["give a file name ending in .png"]),
     (["plot", "1", "--out", "no/such/folder/c.png"], ["does not exist"]),
     (["plot", "1", "--chart", "vintages", "--date", "2001-01-31"], ["outside run 1's dates"]),
+    (["plot", "1", "--chart", "vintages", "--date", "2019-06-30"], ["only one vintage", "no revision to draw"]),
+    (["report", "1", "--out", "r.txt"], ["give a file name ending in .html"]),
+    (["report", "1", "--out", "no/such/folder/r.html"], ["does not exist"]),
     (["export", "1", "out.xlsx"], ["use a .parquet or .csv file name"]),
     (["query", "no_such_query"], ["no query 'no_such_query'"]),
     (["query", "revision_history", "--param", "dataset=trees"], ["needs parameter(s) asset, date"]),

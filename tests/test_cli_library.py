@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from panel import ModelSpec, Panel, Prior, fit
@@ -66,24 +67,28 @@ def test_charts_state_units_basis_and_as_of(cli_small_fit):
     _, result = cli_small_fit
     fig = plots.premium_paths(result.estimates, ["Alder", "Elm"], 12, as_of="2018-12-31")
     assert "as of 2018-12-31" in fig._suptitle.get_text() and "annualised %" in fig._suptitle.get_text()
-    labels = [t.get_text() for t in fig.axes[0].get_legend().get_texts()]
-    assert labels == ["filtered (real-time), 90% band", "smoothed (revised), 90% band"]
+    labels = [t.get_text() for t in fig.legends[0].get_texts()]
+    assert labels == ["filtered (real-time)", "its 90% band (edges)", "smoothed (revised)", "its 90% band"]
     assert fig.axes[0].get_ylabel() == "premium, % a year"
-    # drawn values are the annualised premia
-    line = fig.axes[0].get_lines()[0]
+    # drawn values are the annualised premia (lines: smoothed, two filtered band edges, filtered)
+    lines = fig.axes[0].get_lines()
     alder = result.estimates[result.estimates["asset"] == "Alder"]
-    assert np.allclose(line.get_ydata(), alder["filtered_mean"] * 1200)
+    assert np.allclose(lines[3].get_ydata(), alder["filtered_mean"] * 1200)
+    assert np.allclose(lines[0].get_ydata(), alder["smoothed_mean"] * 1200)
     with pytest.raises(ValueError, match="no estimates for asset"):
         plots.premium_paths(result.estimates, ["Oak"], 12, as_of="2018-12-31")
     cs = result.cross_section("2018-06-30", "smoothed")
     fig = plots.cross_section_chart(cs.table(), 12, cs.date, "smoothed", as_of="2018-12-31")
-    assert "at 2018-06-30 (smoothed; as of 2018-12-31; annualised %)" in fig.axes[0].get_title()
+    assert "at 2018-06-30, smoothed (revised); as of 2018-12-31; annualised %" in fig.axes[0].get_title()
     history = plots.vintage_frame([("2018-12-31", result.estimates)], "Birch", "2018-06-30")
     assert list(history.columns)[:2] == ["as_of", "filtered_mean"] and len(history) == 1
-    fig = plots.vintage_chart(history, "Birch", "2018-06-30", 12, reference=0.004)
-    assert "Birch at 2018-06-30" in fig.axes[0].get_title()
+    revised = history.assign(as_of=pd.Timestamp("2019-06-30"), smoothed_mean=history["smoothed_mean"] + 1e-4)
+    fig = plots.vintage_chart(pd.concat([history, revised]), "Birch", "2018-06-30", 12, reference=0.004)
+    assert "Birch at 2018-06-30" in fig._suptitle.get_text()
     with pytest.raises(ValueError, match="no vintage"):
         plots.vintage_chart(history.iloc[:0], "Birch", "2018-06-30", 12)
+    with pytest.raises(ValueError, match="only one vintage"):
+        plots.vintage_chart(history, "Birch", "2018-06-30", 12)
 
 
 def test_save_writes_png(cli_small_fit, tmp_path):

@@ -25,6 +25,7 @@ COMMAND_MODULES = (
     "panel.cli.runs",        # runs, show, estimates, cross-section, diff, export, plot
     "panel.cli.storecmd",    # store info | upgrade, query
     "panel.cli.demo",        # demo
+    "panel.cli.report",      # report
 )
 OPTIONAL_MODULES = (
     "panel.cli.backfill",    # backfill, revisions, evaluate

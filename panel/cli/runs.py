@@ -522,11 +522,15 @@ def plot(
                      "cross-section: the premia at --date; vintages: how the estimate at --date moved "
                      "across stored vintages.")] = Chart.paths,
     kind: Annotated[Kind, typer.Option("--kind", help="Basis of the cross-section chart.")] = Kind.smoothed,
-    out: Annotated[Path | None, typer.Option("--out", help="PNG file to write (default: "
-                   "riskprem-run<ID>-<chart>.png here).", show_default=False)] = None,
+    out: Annotated[Path | None, typer.Option("--out", help="Chart file to write; its ending picks the "
+                   "format: .png, .svg or .pdf (default: riskprem-run<ID>-<chart>.png here).",
+                   show_default=False)] = None,
+    same_scale: Annotated[bool, typer.Option("--same-scale", help="Paths chart: one vertical scale for "
+                          "every asset's panel.")] = False,
     as_json: JsonFlag = False,
 ) -> None:
-    """Draw a PNG chart of a run (annualised %, 90% bands, as-of date in the title)."""
+    """Draw a chart of a run as PNG, SVG or PDF (annualised %, 90% bands; dataset, label and as-of
+    date in the title)."""
     import pandas as pd
 
     from panel import plots
@@ -536,11 +540,14 @@ def plot(
     st = state(ctx)
     when = parse_date(date, "--date")
     target = out or Path(f"riskprem-run{run_id}-{chart.value}.png")
-    if target.suffix.lower() != ".png":
-        fail(f"--out {target}: charts are written as PNG; give a file name ending in .png")
+    try:
+        plots.chart_format(target)
+    except plots.ChartError as error:
+        fail(f"--out {error}")
     existing_folder(target, "--out")
     with store_for(st) as store, user_errors():
         inputs = run_inputs(store, run_id)
+        dataset, label = _names(store).get(inputs.run["dataset_hash"]), inputs.run["label"]
         assets = list(inputs.panel.assets)
         unknown = [a for a in asset or () if a not in assets]
         if unknown:
@@ -551,23 +558,25 @@ def plot(
             fail(f"--date {when.date()} is outside run {run_id}'s dates {inputs.panel.dates[0].date()} to "
                  f"{as_of.date()}; give a date in that range")
         ppy = _ppy(inputs)
-        if chart == Chart.paths:
-            chosen = list(asset) if asset else assets[:4]
-            fig = plots.premium_paths(run_tables(store, run_id)["estimates"], chosen, ppy, as_of,
-                                      title=f"Run {run_id}: premium paths")
-        elif chart == Chart.cross_section:
-            result = evaluated_run(store, run_id)
-            cs = result.cross_section(when, kind.value)
-            fig = plots.cross_section_chart(cs.table(), ppy, cs.date, kind.value, as_of,
-                                            title=f"Run {run_id}: cross-section")
-        else:
-            chosen = list(asset) if asset else assets[:1]
-            date_used = inputs.panel.dates[inputs.panel.dates.searchsorted(when, side="right") - 1]
-            history = vintage_history(store, run_id, chosen[0], date_used)
-            if len(history) == 0:
-                fail(f"no stored vintage of run {run_id}'s model has {chosen[0]!r} at {date_used.date()}; "
-                     "backfill vintages first or pick another date")
-            fig = plots.vintage_chart(history, chosen[0], date_used, ppy, title="Revisions across vintages")
+        try:
+            if chart == Chart.paths:
+                chosen = list(asset) if asset else assets[:4]
+                fig = plots.premium_paths(run_tables(store, run_id)["estimates"], chosen, ppy, as_of,
+                                          title=plots.heading("Premium paths", dataset, label),
+                                          shared_scale=same_scale)
+            elif chart == Chart.cross_section:
+                result = evaluated_run(store, run_id)
+                cs = result.cross_section(when, kind.value)
+                fig = plots.cross_section_chart(cs.table(), ppy, cs.date, kind.value, as_of,
+                                                title=plots.heading("Cross-section", dataset, label))
+            else:
+                chosen = list(asset) if asset else assets[:1]
+                date_used = inputs.panel.dates[inputs.panel.dates.searchsorted(when, side="right") - 1]
+                history = vintage_history(store, run_id, chosen[0], date_used)
+                fig = plots.vintage_chart(history, chosen[0], date_used, ppy,
+                                          title=plots.heading("Revisions across vintages", dataset, label))
+        except plots.ChartError as error:
+            fail(f"run {run_id}: {error}")
     written = plots.save(fig, target)
     if as_json:
         output.emit_json({"run_id": run_id, "chart": chart.value, "path": str(written),

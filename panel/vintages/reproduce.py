@@ -322,19 +322,32 @@ def reproduce(store: Store, run_id: int, *, rtol: float = 1e-10, atol: float = 0
 # ---------------------------------------------------------------------------------------------
 # vintages of a run
 
-def vintage_history(store: Store, run_id: int, asset: str, date) -> pd.DataFrame:
-    """One asset's premium at ``date`` in every stored vintage of the same model as run ``run_id``
-    (same dataset and recorded spec; the newest run per cut-off), oldest cut-off first.
-
-    Columns: ``as_of, run_id, kind, filtered_mean, filtered_std, smoothed_mean, smoothed_std,
-    revision`` (the ``revision_history`` query; per-period decimals).
-    """
-    from panel.store import list_runs, run_query
+def same_model_runs(store: Store, run_id: int) -> pd.DataFrame:
+    """The vintages of run ``run_id``'s model: the finished runs of its dataset with the same recorded
+    spec, the newest run per cut-off, oldest cut-off first (``list_runs`` columns)."""
+    from panel.store import list_runs
 
     run = get_run(store, run_id)
     spec = (run["settings"] or {}).get("spec")
     runs = list_runs(store, run["dataset_hash"])
-    same = [int(i) for i, s in zip(runs["id"], runs["settings"]) if (s or {}).get("spec") == spec]
+    model = np.array([(s or {}).get("spec") == spec for s in runs["settings"]], dtype=bool)
+    same = runs[model & (runs["status"] != "failed").to_numpy()]
+    same = same.sort_values(["as_of", "id"], kind="stable").drop_duplicates("as_of", keep="last")
+    return same.reset_index(drop=True)
+
+
+def vintage_history(store: Store, run_id: int, asset: str, date, runs=None) -> pd.DataFrame:
+    """One asset's premium at ``date`` in every stored vintage of the same model as run ``run_id``
+    (same dataset and recorded spec; the newest run per cut-off), oldest cut-off first.  ``runs``:
+    the vintages' run ids instead (one per cut-off), e.g. a report's own choice.
+
+    Columns: ``as_of, run_id, kind, filtered_mean, filtered_std, smoothed_mean, smoothed_std,
+    revision`` (the ``revision_history`` query; per-period decimals).
+    """
+    from panel.store import run_query
+
+    run = get_run(store, run_id)
+    same = [int(i) for i in (same_model_runs(store, run_id)["id"] if runs is None else runs)]
     history = run_query(store, "revision_history", {"dataset": run["dataset_hash"], "asset": asset,
                                                     "date": str(pd.Timestamp(date).date())})
     history = history[history["run_id"].isin(same)]
