@@ -35,46 +35,10 @@ def _ppy(inputs) -> int:
     return int(inputs.spec.periods_per_year or inputs.panel.periods_per_year)
 
 
-def _structure(params) -> str:
-    if params.B is not None:
-        return f"factor ({params.B.shape[1]} return factor{'s' if params.B.shape[1] > 1 else ''})"
-    return "diagonal" if params.psi is not None else "full"
-
-
 def _spec_lines(spec, settings: dict, params, ppy: int) -> list[tuple[str, str]]:
-    k = params.Lambda.shape[1]
-    lines = [("premium factors", f"{k}" + (" (independent local levels)" if k == 0 else "")),
-             ("return shocks", _structure(params))]
-    if spec.vol_scale is not None:
-        vs = spec.vol_scale
-        lines.append(("vol scale", f"ewma, half-life {vs.half_life:g} periods" if vs.kind == "ewma"
-                      else f"{vs.kind} series"))
-    def premium_vol(value):  # settings stored in the legacy convention are shown in today's
-        shown = units.convert_premium_vol(value, ppy, spec.premium_vol_convention)
-        note = "" if spec.premium_vol_convention == units.YEARLY_CHANGE else \
-            f" (stored as {100 * value:g} in the legacy sqrt(q x ppy) convention)"
-        return f"{100 * shown:.4g}% a year{note}"
+    from panel.report.content import setting_lines  # one wording for the terminal and the report
 
-    for key, value in spec.fixed:
-        lines.append((f"fixed {key}", premium_vol(value) if key.startswith("own_premium_vol")
-                      else f"{100 * value:g}% a year"))
-    if spec.max_premium_vol is not None:
-        lines.append(("max premium vol", premium_vol(spec.max_premium_vol)))
-    if spec.premium_prior is not None:
-        lines.append(("premium prior", f"{premium_vol(spec.premium_prior.vol)}, weight "
-                      f"{spec.premium_prior.weight:g} periods"))
-    if spec.return_prior is not None:
-        lines.append(("return prior", f"{100 * spec.return_prior.vol:g}% a year, weight "
-                      f"{spec.return_prior.weight:g} periods"))
-    lines.append(("initial premium", "diffuse (exact)" if spec.initial_premium is None else
-                  f"{100 * spec.initial_premium.mean:g}% +- {100 * spec.initial_premium.vol:g}% a year"))
-    lines.append(("window", str(settings.get("window", "expanding"))))
-    lines.append(("start", "warm (recorded parameters)" if settings.get("start") else "default rule"))
-    budget = "" if spec.time_budget is None else f", time budget {spec.time_budget:g} s"
-    lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
-                                f"{spec.tol:g}/{spec.param_tol:g}, {spec.starts} start(s), std errors "
-                                f"{spec.std_errors}, path {spec.method}"))
-    return lines
+    return setting_lines(spec, settings, params, ppy)
 
 
 def _flat(value, prefix: str, out: dict) -> None:

@@ -176,6 +176,10 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
                   f"{100 * spec.initial_premium.mean:g}% +- {100 * spec.initial_premium.vol:g}% a year"))
     lines.append(("window", str(settings.get("window", "expanding"))))
     lines.append(("start", "warm (recorded parameters)" if settings.get("start") else "default rule"))
+    budget = "" if spec.time_budget is None else f", time budget {spec.time_budget:g} s"
+    lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
+                                f"{spec.tol:g}/{spec.param_tol:g}, {spec.starts} start(s), std errors "
+                                f"{spec.std_errors}, path {spec.method}"))
     return lines
 
 
