@@ -11,7 +11,7 @@ from panel.kalman.dense import dense_smoother
 from panel.kalman.simsmooth import PathSampler
 
 N, T = 3, 30
-DRAWS = {"spectral": 3000, "mean-correction": 500}   # the second route runs the dense smoother
+DRAWS = {"spectral": 3000, "precision": 2000, "mean-correction": 500}   # the last runs the dense smoother
 Z_MAX = 4.5          # |z| bound over all cells (about 100 cells: a false alarm ~ 1e-3)
 
 
@@ -36,9 +36,9 @@ def _panel(rng, pattern):
     return Y
 
 
-def _moments(sampler, Sigma, H, seed):
+def _moments(sampler, Sigma, H, seed, n=None):
     rng = np.random.default_rng(seed)
-    draws = np.array([sampler.draw(Sigma, H, rng) for _ in range(DRAWS[sampler.route])])
+    draws = np.array([sampler.draw(Sigma, H, rng) for _ in range(n or DRAWS[sampler.route])])
     return draws.mean(axis=0), draws.var(axis=0, ddof=1), len(draws)
 
 
@@ -53,33 +53,38 @@ def _check(mean, var, n, ref_mean, ref_var):
     assert np.abs(z_var).max() < Z_MAX, np.abs(z_var).max()
 
 
-@pytest.mark.parametrize("pattern,structure,scaled,informative", [
-    ("balanced", "factor", False, False), ("balanced", "full", True, False),
-    ("ragged", "factor", False, False), ("ragged", "full", True, True),
-    ("balanced", "factor", False, True)])
-def test_premium_draws_match_dense_smoother(pattern, structure, scaled, informative):
+@pytest.mark.parametrize("pattern,structure,scaled,informative,route", [
+    ("balanced", "factor", False, False, "spectral"), ("balanced", "full", True, False, "spectral"),
+    ("ragged", "factor", False, False, "precision"), ("ragged", "full", True, True, "precision"),
+    ("balanced", "factor", False, True, "precision"),
+    ("ragged", "factor", True, False, "mean-correction"),
+    ("balanced", "full", False, True, "mean-correction")])
+def test_premium_draws_match_dense_smoother(pattern, structure, scaled, informative, route):
     rng = np.random.default_rng(11)
     _, Sigma, H = _model(rng, structure)
     Y = _panel(rng, pattern)
     s2 = np.exp(rng.normal(size=T) * 0.3) if scaled else None
     init = (0.1, 0.5) if informative else None
-    sampler = PathSampler(Y, s2, init)
-    expected_route = "spectral" if pattern == "balanced" and not informative else "mean-correction"
-    assert sampler.route == expected_route
+    forced = route if route == "mean-correction" else "auto"
+    sampler = PathSampler(Y, s2, init, route=forced)
+    assert sampler.route == route
     ref = dense_smoother(Y, Sigma, H, s2, init=init, want_estep=False)   # the project's oracle
     _check(*_moments(sampler, Sigma, H, 5), ref.smoothed_mean, ref.smoothed_var)
 
 
-def test_zero_own_premium_variance_keeps_draws_exact():
-    """A fixed zero own premium variance makes Sigma singular; both routes still agree with the
-    dense smoother."""
+def test_singular_and_stiff_premium_covariances_keep_draws_exact():
+    """Two zero own premium variances with one factor make Sigma singular (the precision route
+    falls back to the mean correction); a premium variance 1e-8 of the return noise makes the
+    precision matrix stiff.  Every route still agrees with the dense smoother."""
     rng = np.random.default_rng(3)
     lam, _, H = _model(rng, "factor")
-    Sigma = lam @ lam.T + np.diag([0.02, 0.0, 0.03])
-    for pattern in ("balanced", "ragged"):
-        Y = _panel(rng, pattern)
-        ref = dense_smoother(Y, Sigma, H, want_estep=False)
-        _check(*_moments(PathSampler(Y), Sigma, H, 8), ref.smoothed_mean, ref.smoothed_var)
+    singular = lam @ lam.T + np.diag([0.02, 0.0, 0.0])
+    stiff = lam @ lam.T * 1e-6 + np.diag([1e-8, 2e-8, 1e-8])
+    for Sigma, n in ((singular, DRAWS["mean-correction"]), (stiff, None)):
+        for pattern in ("balanced", "ragged"):
+            Y = _panel(rng, pattern)
+            ref = dense_smoother(Y, Sigma, H, want_estep=False)
+            _check(*_moments(PathSampler(Y), Sigma, H, 8, n), ref.smoothed_mean, ref.smoothed_var)
 
 
 def test_premium_draws_match_statsmodels_smoother():
