@@ -10,30 +10,10 @@ import pytest
 from panel.kalman.dense import dense_smoother
 from panel.kalman.simsmooth import PathSampler
 
-N, T = 3, 30
+from tests.test_fast_paths import T, _model, _panel   # the same invented panels (N=5, T=30)
+
 DRAWS = {"spectral": 3000, "precision": 2000, "mean-correction": 500}   # the last runs the dense smoother
-Z_MAX = 4.5          # |z| bound over all cells (about 100 cells: a false alarm ~ 1e-3)
-
-
-def _model(rng, structure):
-    lam = rng.normal(size=(N, 1)) * 0.15
-    Sigma = lam @ lam.T + np.diag(rng.uniform(0.01, 0.04, N))
-    if structure == "factor":
-        B = rng.normal(size=(N, 1))
-        H = B @ B.T + np.diag(rng.uniform(0.5, 1.5, N))
-    else:
-        A = rng.normal(size=(N, N))
-        H = A @ A.T / N + 0.3 * np.eye(N)
-    return lam, Sigma, H
-
-
-def _panel(rng, pattern):
-    Y = rng.normal(size=(T, N)) * 0.7 + np.cumsum(rng.normal(size=(T, N)) * 0.15, axis=0)
-    if pattern == "ragged":               # late entry, an exit, scattered gaps
-        Y[:6, 1] = np.nan
-        Y[T - 5:, 2] = np.nan
-        Y[[9, 10, 17], 0] = np.nan
-    return Y
+Z_MAX = 4.5          # |z| bound over all cells (about 150 cells: a false alarm ~ 1e-3)
 
 
 def _moments(sampler, Sigma, H, seed, n=None):
@@ -55,9 +35,9 @@ def _check(mean, var, n, ref_mean, ref_var):
 
 @pytest.mark.parametrize("pattern,structure,scaled,informative,route", [
     ("balanced", "factor", False, False, "spectral"), ("balanced", "full", True, False, "spectral"),
-    ("ragged", "factor", False, False, "precision"), ("ragged", "full", True, True, "precision"),
+    ("exits", "factor", False, False, "precision"), ("exits", "full", True, True, "precision"),
     ("balanced", "factor", False, True, "precision"),
-    ("ragged", "factor", True, False, "mean-correction"),
+    ("exits", "factor", True, False, "mean-correction"),
     ("balanced", "full", False, True, "mean-correction")])
 def test_premium_draws_match_dense_smoother(pattern, structure, scaled, informative, route):
     rng = np.random.default_rng(11)
@@ -66,6 +46,7 @@ def test_premium_draws_match_dense_smoother(pattern, structure, scaled, informat
     s2 = np.exp(rng.normal(size=T) * 0.3) if scaled else None
     init = (0.1, 0.5) if informative else None
     forced = route if route == "mean-correction" else "auto"
+    pattern = "gaps" if (pattern, route) == ("exits", "mean-correction") else pattern
     sampler = PathSampler(Y, s2, init, route=forced)
     assert sampler.route == route
     ref = dense_smoother(Y, Sigma, H, s2, init=init, want_estep=False)   # the project's oracle
@@ -78,10 +59,10 @@ def test_singular_and_stiff_premium_covariances_keep_draws_exact():
     precision matrix stiff.  Every route still agrees with the dense smoother."""
     rng = np.random.default_rng(3)
     lam, _, H = _model(rng, "factor")
-    singular = lam @ lam.T + np.diag([0.02, 0.0, 0.0])
-    stiff = lam @ lam.T * 1e-6 + np.diag([1e-8, 2e-8, 1e-8])
+    singular = lam @ lam.T + np.diag([0.02, 0.0, 0.0, 0.03, 0.01])
+    stiff = lam @ lam.T * 1e-6 + np.diag([1e-8, 2e-8, 1e-8, 3e-8, 1e-8])
     for Sigma, n in ((singular, DRAWS["mean-correction"]), (stiff, None)):
-        for pattern in ("balanced", "ragged"):
+        for pattern in ("balanced", "staircase"):
             Y = _panel(rng, pattern)
             ref = dense_smoother(Y, Sigma, H, want_estep=False)
             _check(*_moments(PathSampler(Y), Sigma, H, 8, n), ref.smoothed_mean, ref.smoothed_var)
@@ -94,7 +75,7 @@ def test_premium_draws_match_statsmodels_smoother():
 
     rng = np.random.default_rng(21)
     _, Sigma, H = _model(rng, "factor")
-    Y = _panel(rng, "ragged")
+    Y = _panel(rng, "exits")
     sm = statsmodels_smoother(Y, Sigma, H)
     ref_mean = np.asarray(sm.smoothed_state).T
     ref_var = covariance_diagonals(np.asarray(sm.smoothed_state_cov))

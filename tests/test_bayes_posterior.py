@@ -93,9 +93,11 @@ def test_all_variances_fixed_reproduces_the_smoother():
     assert res.status == "mixed"        # premium_last mixes (independent exact draws)
 
 
-def test_runs_are_bit_identical_and_constraints_hold():
+def test_runs_are_bit_identical_and_constraints_hold(tmp_path):
     """Seeded chains (SeedSequence.spawn) reproduce bit for bit; the cap and the fixed values are
     respected in every draw; priors round-trip through a dict; draws export to NetCDF."""
+    import arviz as az
+
     rng = np.random.default_rng(8)
     Y = rng.normal(size=(60, 4)) * 0.04 + 0.005
     cap = 2e-6
@@ -110,6 +112,9 @@ def test_runs_are_bit_identical_and_constraints_hold():
     assert np.all(a.draws["q"][..., 1] == 1e-7)
     assert np.all(a.draws["Lambda"][..., 0].sum(axis=-1) >= 0)   # k = 1: positive loading sum
     assert Priors.from_dict(Priors(premium_vol=0.01).to_dict()) == Priors(premium_vol=0.01)
+    a.to_inference_data().to_netcdf(tmp_path / "draws.nc")
+    back = az.from_netcdf(tmp_path / "draws.nc")
+    assert np.array_equal(back.posterior["q"].values, a.draws["q"])
     c = sample(Y, **{**kwargs, "seed": 12})
     assert not np.array_equal(a.draws["q"], c.draws["q"])
 

@@ -226,6 +226,8 @@ def premium_noncentred(target, weights, f, X, entry, c_now, Lambda, q, free_q, p
     f_entry Lambda_i' ~ N(m0, v0)``.  ``s_i = +-sqrt(q_i)`` has the ``N(0, q_var)`` prior (the
     halfnormal family; exact); for the invgamma family the same Gaussian with variance ``q_ref`` is
     a proposal corrected by a Metropolis step.  Fixed ``q_i``: ``s_i`` stays (its column is zeroed).
+    ``c_now`` (N,) are the current entry levels, ``X`` (T, N) the standardised own paths (0 at and
+    before entry), ``entry`` (N,) the first-observation dates.
 
     Returns ``(c, Lambda, q, s)``: ``s`` the new signed roots (the caller rebuilds ``mu = c + f
     Lambda' + s X``), unchanged rows where a step was rejected.
