@@ -29,7 +29,7 @@ def test_nile_posterior_matches_grid_integration():
     """Conjugate single-series local level with inverse-gamma priors on both variances: the
     sampler's posterior means, sds and 5/95% quantiles of (q, h) against numerical integration
     of statsmodels' exact diffuse log-likelihood (UnobservedComponents 'llevel',
-    use_exact_diffuse=True) times the prior on an 90 x 70 log grid."""
+    use_exact_diffuse=True) times the prior on a 90 x 70 log grid."""
     import statsmodels.api as sm
 
     y = _nile()
@@ -61,7 +61,7 @@ def test_nile_posterior_matches_grid_integration():
         assert abs(flat.mean() - mean) < 4.0 * mcse + 0.01 * sd, (flat.mean(), mean, mcse)
         assert abs(flat.std() / sd - 1.0) < 0.08, (flat.std(), sd)
         for p in (0.05, 0.95):
-            grid_q = np.interp(p, cdf, values)          # grid spacing ~ 8% in q: 3% tolerance
+            grid_q = np.interp(p, cdf, values)          # grid steps are 8% (q) and 3% (h) apart
             assert abs(np.quantile(flat, p) / grid_q - 1.0) < 0.08, (p, np.quantile(flat, p), grid_q)
     assert res.settings["path_route"] == "spectral"
 
