@@ -1,0 +1,80 @@
+"""Benchmark of the Gibbs sampler against the ML fit of the same panel, in the same process:
+``python -m panel.bayes.bench [--quick] [--threads N]``.
+
+Panel: ``panel.bench.simulate`` (invented, balanced, monthly; N=100, T=600 by default, with one
+premium factor and one return factor).  Timed: the ML fit ``panel.model.fit.fit`` (default
+settings, one factor, factor H) and ``panel.bayes.sample`` with 4 chains of 250 warm-up and 500
+kept sweeps.  Printed: seconds per E-step and per sweep, the cost of 2,000 sweeps against the ML
+fit (target: within 15x), the summary and diagnostics stages, and min ESS and max R-hat with ESS
+per second of sampling.  Timing never fails anything.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+
+FULL = {"N": 100, "T": 600, "chains": 4, "warmup": 250, "draws": 500, "n_summary": 100}
+QUICK = {"N": 10, "T": 120, "chains": 2, "warmup": 50, "draws": 100, "n_summary": 20}
+TARGET = 15.0
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--quick", action="store_true", help="small panel, short chains")
+    parser.add_argument("--threads", type=int, default=1, help="BLAS threads (default 1)")
+    args = parser.parse_args(argv)
+    for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+        os.environ[var] = str(args.threads)       # before numpy loads BLAS (lazy imports below)
+    import time
+
+    import numpy as np
+
+    from panel.bayes import sample
+    from panel.bench import simulate
+    from panel.model.fit import fit
+    from panel.model.spec import ModelSpec
+
+    cfg = QUICK if args.quick else FULL
+    frame, _, _ = simulate(cfg["N"], cfg["T"], "balanced")
+    spec = ModelSpec(premium_factors=1, return_shocks="factor")
+    fit(frame.iloc[:60, :5], ModelSpec(premium_factors=1, max_iter=5))      # warm imports
+    sample(frame.iloc[:60, :5], k=1, draws=5, chains=2, warmup=5, n_summary=2)
+
+    t0 = time.perf_counter()
+    ml = fit(frame, spec)
+    t_ml = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    res = sample(frame, k=1, structure="factor", draws=cfg["draws"], chains=cfg["chains"],
+                 warmup=cfg["warmup"], seed=0, n_summary=cfg["n_summary"])
+    t_total = time.perf_counter() - t0
+    sweeps = cfg["chains"] * (cfg["warmup"] + cfg["draws"])
+    per_sweep = res.timings["sampling"] / sweeps
+    per_estep = t_ml / ml.n_iter
+    p = res.parameters
+    ess = np.minimum(p["ess_bulk"], p["ess_tail"])
+    print(f"panel: balanced N={cfg['N']} T={cfg['T']} (invented, panel.bench.simulate), "
+          f"k=1, factor H r=1, BLAS threads {args.threads}")
+    print(f"ML fit: {t_ml:.2f} s, {ml.n_iter} E-steps ({per_estep * 1e3:.2f} ms each), "
+          f"status {ml.status}")
+    print(f"Gibbs: {sweeps} sweeps ({cfg['chains']} chains x {cfg['warmup']} warm-up + "
+          f"{cfg['draws']} kept) in {res.timings['sampling']:.2f} s: {per_sweep * 1e3:.2f} ms a "
+          f"sweep = {per_sweep / per_estep:.1f} E-steps; path route {res.settings['path_route']}")
+    t2000 = 2000 * per_sweep
+    verdict = "within" if t2000 / t_ml <= TARGET else "OVER"
+    print(f"2,000 draws: {t2000:.2f} s = {t2000 / t_ml:.1f}x the ML fit ({verdict} the "
+          f"{TARGET:.0f}x target)")
+    print(f"summaries ({res.settings['n_summary']} filter/smoother runs, mixture quantiles): "
+          f"{res.timings['summary']:.2f} s; R-hat/ESS (ArviZ, {len(p)} quantities): "
+          f"{res.timings['diagnostics']:.2f} s; whole run {t_total:.2f} s = "
+          f"{t_total / t_ml:.1f}x the ML fit")
+    worst = p.loc[p["rhat"].idxmax()]
+    print(f"max split R-hat {p['rhat'].max():.3f} ({worst['name']} {worst['row']}); min ESS "
+          f"{ess.min():.0f} -> {ess.min() / res.timings['sampling']:.1f} ESS/s; median ESS "
+          f"{ess.median():.0f} -> {ess.median() / res.timings['sampling']:.1f} ESS/s; status "
+          f"{res.status}")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
