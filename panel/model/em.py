@@ -167,6 +167,15 @@ class _OutOfTime(Exception):
     pass
 
 
+def _charge(count: dict, max_iter: int, time_left, spent: float) -> None:
+    """Count one more E-step of a quasi-Newton finish, or stop it at the E-step or time budget."""
+    if count["n"] >= max_iter:
+        raise _OutOfTime("max_iter")
+    if time_left is not None and spent > time_left:
+        raise _OutOfTime("time_budget")
+    count["n"] += 1
+
+
 def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
                   trace, elapsed):
     """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated.
@@ -184,11 +193,7 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
     scale = max(1.0, abs(obj))
 
     def f(x):
-        if count["n"] >= max_iter:
-            raise _OutOfTime("max_iter")
-        if time_left is not None and elapsed() - t_start > time_left:
-            raise _OutOfTime("time_budget")
-        count["n"] += 1
+        _charge(count, max_iter, time_left, elapsed() - t_start)
         try:
             pp = packer.unpack(co.theta(x), p)
             ee = estep(pp)
@@ -319,11 +324,7 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, ma
             return x
 
         def f(xs):
-            if count["n"] >= max_iter:
-                raise _OutOfTime("max_iter")
-            if time_left is not None and elapsed() - t_start > time_left:
-                raise _OutOfTime("time_budget")
-            count["n"] += 1
+            _charge(count, max_iter, time_left, elapsed() - t_start)
             x = full(xs)
             try:
                 pp = packer.unpack(co.theta(x), like)
