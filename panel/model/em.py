@@ -167,6 +167,23 @@ class _OutOfTime(Exception):
     pass
 
 
+def _lbfgs_outcome(res, n: int, converged_message: str) -> tuple[str, str]:
+    """(status, message) of an L-BFGS-B run that ended by itself after ``n`` E-steps."""
+    if res.success:
+        return "converged", converged_message
+    if res.status == 1:             # L-BFGS-B ran out of function evaluations
+        return "max_iter", f"quasi-Newton finish stopped: {res.message}"
+    # e.g. its line search found no increase: not a budget stop
+    return "stalled", (f"quasi-Newton finish stopped after {n} E-steps without meeting its tolerance "
+                       f"({res.message.strip(': ')}); result kept at the best point")
+
+
+def _budget_outcome(stop: Exception, n: int) -> tuple[str, str]:
+    status = str(stop)
+    return status, (f"stopped after {n} E-steps without meeting the tolerance" if status == "max_iter"
+                    else "stopped by the time budget")
+
+
 def _charge(count: dict, max_iter: int, time_left, spent: float) -> None:
     """Count one more E-step of a quasi-Newton finish, or stop it at the E-step or time budget."""
     if count["n"] >= max_iter:
@@ -212,18 +229,10 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
         res = optimize.minimize(f, co.x0, jac=True, method="L-BFGS-B", bounds=co.xbounds,
                                 options={"maxfun": max(1, max_iter - n), "ftol": 1e-15, "gtol": 1e-10,
                                          "maxcor": 20})
-        if res.success:
-            status, message = "converged", f"converged after {count['n']} E-steps (quasi-Newton finish)"
-        elif res.status == 1:       # L-BFGS-B ran out of function evaluations
-            status, message = "max_iter", f"quasi-Newton finish stopped: {res.message}"
-        else:                       # e.g. its line search found no increase: not a budget stop
-            status = "stalled"
-            message = (f"quasi-Newton finish stopped after {count['n']} E-steps without meeting "
-                       f"its tolerance ({res.message.strip(': ')}); result kept at the best point")
+        status, message = _lbfgs_outcome(res, count["n"],
+                                         f"converged after {count['n']} E-steps (quasi-Newton finish)")
     except _OutOfTime as stop:
-        status = str(stop)
-        message = (f"stopped after {count['n']} E-steps without meeting the tolerance"
-                   if status == "max_iter" else "stopped by the time budget")
+        status, message = _budget_outcome(stop, count["n"])
     return best["p"], best["e"], best["obj"], count["n"], status, message
 
 
@@ -359,20 +368,11 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, ma
                                     callback=callback,
                                     options={"maxfun": max(1, max_iter - count["n"]), "ftol": 0.0,
                                              "gtol": 1e-10, "maxcor": MAXCOR})
-            if res.success:
-                status, message = "converged", "quasi-newton"
-            elif res.status == 1:       # L-BFGS-B ran out of function evaluations
-                status, message = "max_iter", f"quasi-Newton finish stopped: {res.message}"
-            else:                       # e.g. its line search found no increase: not a budget stop
-                status = "stalled"
-                message = (f"quasi-Newton finish stopped after {count['n']} E-steps without meeting "
-                           f"its tolerance ({res.message.strip(': ')}); result kept at the best point")
+            status, message = _lbfgs_outcome(res, count["n"], "quasi-newton")
         except _Converged:
             status, message = "converged", "quasi-newton"
         except _OutOfTime as stop:
-            status = str(stop)
-            message = (f"stopped after {count['n']} E-steps without meeting the tolerance"
-                       if status == "max_iter" else "stopped by the time budget")
+            status, message = _budget_outcome(stop, count["n"])
             break
         if status != "converged":
             break
