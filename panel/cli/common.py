@@ -19,6 +19,7 @@ from panel.cli import output
 from panel.ingest import IngestError
 from panel.model.spec import SpecError
 from panel.store import StoreError, open_store, public_location, resolve_location
+from panel.store.errors import database_failure
 
 #: Seconds a command waits for another process's write lock on the store before giving up.
 DEFAULT_LOCK_WAIT = 10.0
@@ -26,9 +27,10 @@ DEFAULT_LOCK_WAIT = 10.0
 
 def user_error_types() -> tuple[type[BaseException], ...]:
     """The library errors that mean "bad input": printed as one line, exit code 1."""
+    from panel.files import OutputError
     from panel.vintages.backfill import BackfillError
 
-    return (SpecError, IngestError, StoreError, BackfillError)
+    return (SpecError, IngestError, StoreError, BackfillError, OutputError)
 
 
 @dataclass
@@ -69,6 +71,11 @@ def user_errors() -> Iterator[None]:
         yield
     except user_error_types() as error:
         fail(str(error))
+    except Exception as error:   # a damaged store file or a lost server: one line, not a traceback
+        problem = database_failure(error)
+        if problem is None:
+            raise
+        fail(str(problem))
 
 
 @contextlib.contextmanager

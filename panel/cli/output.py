@@ -31,6 +31,7 @@ from rich.table import Table
 from rich.text import Text
 
 from panel import units
+from panel.files import formula_safe_frame
 
 CAUTION = ("Caution: statistical estimates with model risk, not investment advice; "
            "follow your firm's model-risk governance.")
@@ -112,7 +113,8 @@ def emit_json(payload: dict) -> None:
 
 def emit_csv(frame: pd.DataFrame) -> None:
     buffer = io.StringIO()
-    clean = frame.copy()
+    clean = formula_safe_frame(frame)   # text a spreadsheet would run as a formula gets a leading '
+
     for column in clean.columns:
         if pd.api.types.is_datetime64_any_dtype(clean[column]):
             stamps = pd.to_datetime(clean[column])

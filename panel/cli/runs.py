@@ -13,8 +13,9 @@ import typer
 
 from panel import units
 from panel.cli import output
-from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, existing_folder, fail,
-                              parse_date, state, store_for, user_errors)
+from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, fail, parse_date, state,
+                              store_for, user_errors)
+from panel.files import check_target, write_atomically
 
 ENV_FIELDS = ("riskprem_version", "git_commit", "python_version", "numpy_version", "scipy_version",
               "pandas_version", "duckdb_version", "platform")
@@ -412,14 +413,17 @@ class Table(str, Enum):
 def export(ctx: typer.Context, run_id: RunArg,
            path: Annotated[Path, typer.Argument(help="Target file: .parquet or .csv.", show_default=False)],
            table: Annotated[Table, typer.Option("--table", help="Which result table.")] = Table.estimates,
+           force: Annotated[bool, typer.Option("--force", help="Replace the file if it exists (never "
+                                               "the store itself).")] = False,
            as_json: JsonFlag = False) -> None:
     """Write one result table of a run to a Parquet or CSV file (per-period decimal units, the
-    store's column names)."""
+    store's column names).  In CSV, text a spreadsheet would run as a formula (starting with =, +,
+    -, @) gets a leading single quote; Parquet keeps it as stored."""
     from panel.store import export_run
 
     st = state(ctx)
     with store_for(st) as store, user_errors():
-        written = export_run(store, run_id, path, table.value)
+        written = export_run(store, run_id, path, table.value, overwrite=force)
     if as_json:
         output.emit_json({"run_id": run_id, "table": table.value, "path": str(written),
                           "units": output.MACHINE_UNITS, "caution": output.CAUTION})
@@ -459,7 +463,8 @@ def plot(
     target = out or Path(f"riskprem-run{run_id}-{chart.value}.png")
     if target.suffix.lower() != ".png":
         fail(f"--out {target}: charts are written as PNG; give a file name ending in .png")
-    existing_folder(target, "--out")
+    with user_errors():
+        check_target(target, overwrite=True)   # a chart is redrawn in place, but never into a folder
     with store_for(st) as store, user_errors():
         inputs = run_inputs(store, run_id)
         assets = list(inputs.panel.assets)
@@ -489,7 +494,8 @@ def plot(
                 fail(f"no stored vintage of run {run_id}'s model has {chosen[0]!r} at {date_used.date()}; "
                      "backfill vintages first or pick another date")
             fig = plots.vintage_chart(history, chosen[0], date_used, ppy, title="Revisions across vintages")
-    written = plots.save(fig, target)
+    with user_errors():
+        written = write_atomically(target, lambda file: plots.save(fig, file))
     if as_json:
         output.emit_json({"run_id": run_id, "chart": chart.value, "path": str(written),
                           "caution": output.CAUTION})
