@@ -105,7 +105,10 @@ def _is_io_error(error: BaseException) -> bool:
 
 
 def _reason(error: BaseException) -> str:
+    """The cause in a few words: ``no space left on device``, ``read-only file system``..."""
     if isinstance(error, OSError) and error.strerror:
         return error.strerror.lower()
-    text = str(error).strip().splitlines()
-    return text[0] if text else type(error).__name__
+    text = (str(error).strip().splitlines() or [type(error).__name__])[0]
+    if '": ' in text:   # DuckDB: 'IO Error: Could not write file "PATH": No space left on device'
+        text = text.rsplit('": ', 1)[-1]
+    return text[:1].lower() + text[1:]

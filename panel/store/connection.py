@@ -13,6 +13,7 @@ fact about the store uses :func:`public_location`, and driver messages are passe
 from __future__ import annotations
 
 import importlib.util
+import logging
 import os
 import re
 import time
@@ -26,6 +27,12 @@ from sqlalchemy.pool import NullPool, StaticPool
 from panel.store.errors import DAMAGE_FIX, StoreError, first_line, is_damage, url_secret
 from panel.store.handle import Store
 from panel.store.migrate import apply_migrations, current_version, head_version, missing_write_privilege
+
+# SQLAlchemy's pool logs (with a traceback) a failed rollback of a connection it takes back, e.g.
+# after a damaged DuckDB file was met; the error itself reaches the caller, who reports it in one
+# line.  Without a handler, Python would print that log record to stderr; applications that set up
+# logging still receive it.
+logging.getLogger("sqlalchemy.pool").addHandler(logging.NullHandler())
 
 DEFAULT_LOCATION = "./riskprem.duckdb"
 ENV_VAR = "RISKPREM_STORE"

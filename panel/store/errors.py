@@ -35,7 +35,14 @@ DAMAGE_FIX = ("restore it from a backup copy, or ingest and fit into a new store
 
 def is_damage(line: str) -> bool:
     """Whether a driver message says the database file is damaged."""
-    return any(word in line.lower() for word in ("corrupt", "checksum", "invalidated"))
+    return any(word in line.lower() for word in ("corrupt", "checksum mismatch", "does not match stored checksum"))
+
+
+def damage_in(error: BaseException) -> str | None:
+    """The line of a driver error (any line: DuckDB puts the cause under a rollback failure) that
+    says the database file is damaged, or None."""
+    inner = getattr(error, "orig", None) or error
+    return next((line.strip() for line in str(inner).splitlines() if is_damage(line)), None)
 
 
 def database_failure(error: BaseException) -> StoreError | None:
@@ -46,8 +53,8 @@ def database_failure(error: BaseException) -> StoreError | None:
     if not (module in ("duckdb", "_duckdb", "psycopg", "psycopg2")
             or type(error).__module__.startswith("sqlalchemy.exc")):
         return None
-    line = first_line(error)
-    if is_damage(line):
-        return StoreError(f"the store is damaged ({line}); {DAMAGE_FIX}")
+    line, damage = first_line(error), damage_in(error)
+    if damage is not None:
+        return StoreError(f"the store is damaged ({damage}); {DAMAGE_FIX}")
     return StoreError(f"the store could not be read or written: {line}; check that it is reachable and "
                       "intact (`riskprem store info`)")
