@@ -189,11 +189,12 @@ def plan_backfill(store: Store, dataset: str, spec: ModelSpec | None = None, *, 
         problem = _refusal(panel, as_of, w, spec)
         if problem is None:
             continue
-        if i == 0:   # the start is too early: it would fail on every retry, so say where to start
-            later = next((d for d in panel.dates[panel.dates > as_of] if _refusal(panel, d, w, spec) is None), None)
-            fix = ("no cut-off of the dataset has enough data for this model" if later is None else
-                   f"start the backfill at {later.date()} or later (--start), the first cut-off with enough data")
-            raise BackfillError(f"at the first cut-off {as_of.date()}: {problem}; {fix}")
+        # A start too early would fail on every retry: name the first cut-off that can be fitted.
+        later = None if i else next((d for d in panel.dates[panel.dates > as_of]
+                                     if _refusal(panel, d, w, spec) is None), None)
+        if later is not None:
+            raise BackfillError(f"at the first cut-off {as_of.date()}: {problem}; start the backfill at "
+                                f"{later.date()} or later (--start), the first cut-off with enough data")
         raise SpecError(f"at cut-off {as_of.date()}: {problem}")
     key = settings_key(digest, spec, w, effective_chain(chain, warm_start))
     vintages = tuple(Vintage(as_of=d, chain=i // chain, position=i, stored=find_run(store, digest, key, d))
