@@ -235,7 +235,7 @@ def _drop_short(frame: pd.DataFrame, options: IngestOptions, name: str):
         more = f" (+{len(short) - 1} more)" if len(short) > 1 else ""
         raise IngestError(f"{name}: asset {shown(asset)} has only {count} observations, fewer "
                           f"than min_obs={options.min_obs}{more}; pass a smaller min_obs (CLI "
-                          "--min-obs) or on_short='drop' (CLI --on-short drop)")
+                          "--min-obs) or on_short='drop' (CLI: leave out --refuse-short)")
     notes = [f"asset {shown(a)} has {c} observations (fewer than min_obs={options.min_obs}); "
              "dropped" for a, c in short]
     return frame.drop(columns=[a for a, _ in short]), notes
