@@ -17,6 +17,7 @@ from pathlib import Path
 import pandas as pd
 import pytest
 
+from tests.backends import BOTH
 from tests.cli_helpers import CLI_FIT_OPTIONS
 from tests.hostile import folder_state, hostile_store, one_line_error  # noqa: F401  (fixture)
 
@@ -76,6 +77,7 @@ def test_export_never_writes_over_the_store(hostile_store, tmp_path):
         disguised.rename(store)
 
 
+@BOTH
 def test_export_asks_for_force_before_replacing_a_file(hostile_store):
     target = hostile_store.folder / "estimates.csv"
     target.write_text("keep me\n", encoding="utf-8")
