@@ -18,6 +18,19 @@ import pandas as pd
 #: Periods per year by frequency code (used for annualising: premium x ppy, volatility x sqrt(ppy)).
 PERIODS_PER_YEAR = {"B": 252, "W": 52, "M": 12, "Q": 4, "A": 1}
 
+#: The days a panel may hold: pandas' nanosecond timestamps (``pd.Timestamp.min`` to ``.max``, whole
+#: days).  Later or earlier dates would be shifted by centuries where a date becomes datetime64[ns].
+FIRST_DAY, LAST_DAY = np.datetime64("1677-09-22", "D"), np.datetime64("2262-04-11", "D")
+DAY_RANGE = f"{FIRST_DAY} to {LAST_DAY}"
+
+
+def first_outside_days(dates) -> int | None:
+    """Position of the first of ``dates`` (datetime64 of any unit; NaT ignored) outside
+    :data:`FIRST_DAY` .. :data:`LAST_DAY`, or None when all are inside."""
+    days = np.asarray(dates).astype("datetime64[D]")
+    hits = np.flatnonzero((days < FIRST_DAY) | (days > LAST_DAY))
+    return int(hits[0]) if hits.size else None
+
 
 def canonical_hash(values: pd.DataFrame) -> str:
     """sha256 of a canonical serialisation of ``values`` (dates x assets, float64, NaN = missing).
@@ -189,6 +202,10 @@ def _date_index(index: pd.Index) -> pd.DatetimeIndex:
     if missing.size:
         raise ValueError(f"Panel.from_frame: row {int(missing[0]) + 1} has no date (NaT); date "
                          "every row or drop it")
+    outside = first_outside_days(index.values)
+    if outside is not None:
+        raise ValueError(f"Panel.from_frame: row {outside + 1}: date {index[outside].date()} is outside the "
+                         f"dates a panel can hold ({DAY_RANGE}); correct the date")
     return index
 
 

@@ -39,7 +39,7 @@ def test_one_vintage_per_cutoff_each_fitted_on_data_up_to_its_cutoff(sleeves_sto
     assert list(pd.to_datetime(runs["as_of"])) == list(want)
     assert [w.as_of for w in sorted(report.written, key=lambda w: w.as_of)] == list(want)
     assert set(runs["kind"]) == {"backfill"} and set(runs["dataset_hash"]) == {panel.hash}
-    key = settings_key(panel.hash, SPEC, "expanding")
+    key = settings_key(panel.hash, SPEC, "expanding", chain=3)    # the chain is part of the key
     assert set(runs["backfill_key"]) == {key} == {report.key}        # the store's key = the plan's
     ids = list(runs["id"])
     # chains of 3 cut-offs: cold, warm, warm | cold, warm, warm
@@ -47,7 +47,7 @@ def test_one_vintage_per_cutoff_each_fitted_on_data_up_to_its_cutoff(sleeves_sto
     for row in runs.itertuples():
         as_of = pd.Timestamp(row.as_of)
         settings = row.settings
-        assert settings["as_of"] == str(as_of.date()) and settings["window"] == "expanding"
+        assert settings["as_of"] == str(as_of.date()) and settings["window"] == "expanding" and settings["chain"] == 3
         assert settings["dataset_hash"] == panel.hash and ModelSpec.from_dict(settings["spec"]) == SPEC
         stored = run_tables(store, int(row.id))["estimates"]
         assert pd.Timestamp(stored["date"].max()) == as_of              # nothing after the cut-off

@@ -11,24 +11,7 @@ import time
 import pytest
 
 from tests.cli_helpers import CLI_FIT_OPTIONS
-
-
-def _one_line_error(result, *fragments: str) -> str:
-    assert result.exit_code == 1, result.output
-    assert "Traceback" not in result.output
-    lines = [line for line in result.stderr.splitlines() if line.strip()]
-    assert len(lines) == 1, result.stderr
-    assert lines[0].startswith("error: ")
-    for fragment in fragments:
-        assert fragment in lines[0], lines[0]
-    return lines[0]
-
-
-def _usage_error(result, *fragments: str) -> None:
-    assert result.exit_code == 2, result.output
-    assert "Traceback" not in result.output
-    for fragment in fragments:
-        assert fragment in result.stderr, result.stderr
+from tests.hostile import one_line_error as _one_line_error, usage_error as _usage_error
 
 
 @pytest.fixture

@@ -14,8 +14,8 @@ from typing import Annotated
 import typer
 
 from panel.cli import output
-from panel.cli.common import (CsvFlag, JsonFlag, State, info, parse_date, progress_enabled, state,
-                              store_for, user_errors)
+from panel.cli.common import (CsvFlag, JsonFlag, State, fail, info, parse_date, progress_enabled, state,
+                              store_exists, store_for, user_errors)
 from panel.cli.model_options import ModelOptions, with_model_options
 
 # ---------------------------------------------------------------------------------------------
@@ -152,9 +152,17 @@ def backfill(
     parse_date(start, "--start")
     parse_date(end, "--end")
     spec = model.spec()
+    if scheduler is not None:
+        from panel.vintages.pools import scheduler_address
+
+        with user_errors():   # its form, before the store is opened (Dask would wait 20 s)
+            scheduler = scheduler_address(scheduler)
     if workers is None and scheduler is None:
         workers = default_workers()
     interrupted = False
+    if not store_exists(st):   # a backfill needs a stored dataset: never create an empty store
+        fail(f"no store at {st.shown}; ingest a dataset first (`riskprem ingest FILE --name NAME`) or give "
+             "another store location")
     with store_for(st, write=True, hold=False) as store, user_errors():   # readers work between vintages
         plan = plan_backfill(store, data, spec, start=start, end=end, every=every,
                              window=window or "expanding", chain=chain, warm_start=warm_start, label=label)

@@ -25,9 +25,10 @@ def user_error_types() -> tuple[type[BaseException], ...]:
     from panel.ingest import IngestError
     from panel.model.spec import SpecError
     from panel.store import StoreError
+    from panel.files import OutputError
     from panel.vintages.backfill import BackfillError
 
-    return (SpecError, IngestError, StoreError, BackfillError)
+    return (SpecError, IngestError, StoreError, BackfillError, OutputError)
 
 
 @dataclass
@@ -72,6 +73,13 @@ def user_errors() -> Iterator[None]:
         yield
     except user_error_types() as error:
         fail(str(error))
+    except Exception as error:   # a damaged store file or a lost server: one line, not a traceback
+        from panel.store.errors import database_failure
+
+        problem = database_failure(error)
+        if problem is None:
+            raise
+        fail(str(problem))
 
 
 @contextlib.contextmanager

@@ -35,7 +35,8 @@ class Frequency(str, Enum):
     A = "A"
 
 
-# Reused by `fit --file` (same meaning, same names).
+# Every option of `ingest` is also an option of `fit --file` (same meaning, same names), so an
+# ingest message that names one (e.g. "CLI --allow-extreme") is true for both commands.
 LayoutOpt = Annotated[Layout | None, typer.Option("--layout", help="wide (date + one column per "
                       "asset) or long (date, asset, value); default: detected.", show_default=False)]
 UnitsOpt = Annotated[Units | None, typer.Option("--units", help="Units of the returns in the file; "
@@ -44,14 +45,35 @@ DateColOpt = Annotated[str | None, typer.Option("--date-col", help="Name of the 
                        "column named 'date', else the first.", show_default=False)]
 MinObsOpt = Annotated[int, typer.Option("--min-obs", help="Fewest observations an asset needs; assets "
                       "with fewer are dropped with a warning.")]
+ReturnsOpt = Annotated[Compounding, typer.Option("--returns", help="How the returns compound.")]
+TotalOpt = Annotated[bool, typer.Option("--total-returns", help="The file holds total returns; subtract the "
+                     "rate given by --risk-free.")]
+RiskFreeOpt = Annotated[str | None, typer.Option("--risk-free", help="Risk-free rate: a column of the file, or "
+                        "a file with a date column and one rate column (same units as the returns).",
+                        show_default=False)]
+DateFormatOpt = Annotated[str | None, typer.Option("--date-format", help="strftime format of the dates, e.g. "
+                          "%d/%m/%Y; default: ISO dates, YYYYMMDD, YYYYMM, 2020Q1.", show_default=False)]
+DelimiterOpt = Annotated[str | None, typer.Option("--delimiter", help="CSV separator; default: detected.",
+                         show_default=False)]
+FrequencyOpt = Annotated[Frequency | None, typer.Option("--frequency", help="B W M Q A; default: inferred "
+                         "from the dates.", show_default=False)]
+AssetColOpt = Annotated[str, typer.Option("--asset-col", help="Long layout: the column of asset names.")]
+ValueColOpt = Annotated[str, typer.Option("--value-col", help="Long layout: the column of returns.")]
+RefuseShortOpt = Annotated[bool, typer.Option("--refuse-short", help="Refuse the file when an asset has fewer "
+                           "than --min-obs observations (default: drop it with a warning).")]
+ExtremeOpt = Annotated[bool, typer.Option("--allow-extreme", help="Accept returns beyond +-100% a period, and "
+                       "risk-free rates above 20% a year (median).")]
 
 
-def ingest_options(layout=None, units=None, date_col=None, min_obs=24, **more) -> dict:
-    """Keyword options for :func:`panel.ingest.read_panel` from CLI values."""
-    found = {"layout": layout.value if layout else None, "units": units.value if units else None,
-             "date_col": date_col, "min_obs": min_obs}
-    found.update({k: (v.value if isinstance(v, Enum) else v) for k, v in more.items()})
-    return found
+def file_options(layout, units, returns, total_returns, risk_free, date_col, date_format, delimiter,
+                 frequency, asset_col, value_col, min_obs, refuse_short, allow_extreme) -> dict:
+    """Keyword options for :func:`panel.ingest.read_panel` from the file options that ``ingest`` and
+    ``fit --file`` share."""
+    found = {"layout": layout, "units": units, "returns": returns, "total_returns": total_returns,
+             "risk_free": risk_free, "date_col": date_col, "date_format": date_format, "delimiter": delimiter,
+             "frequency": frequency, "asset_col": asset_col, "value_col": value_col, "min_obs": min_obs,
+             "on_short": "refuse" if refuse_short else "drop", "allow_extreme": allow_extreme}
+    return {k: (v.value if isinstance(v, Enum) else v) for k, v in found.items()}
 
 
 def read_file(path: Path, options: dict):
@@ -102,27 +124,18 @@ def ingest(
                                       "name with new data keeps the history).", show_default=False)],
     layout: LayoutOpt = None,
     units: UnitsOpt = None,
-    returns: Annotated[Compounding, typer.Option("--returns", help="How the returns compound.")]
-    = Compounding.simple,
-    total_returns: Annotated[bool, typer.Option("--total-returns", help="The file holds total returns; "
-                             "subtract the rate given by --risk-free.")] = False,
-    risk_free: Annotated[str | None, typer.Option("--risk-free", help="Risk-free rate: a column of the "
-                         "file, or a file with a date column and one rate column (same units as the "
-                         "returns).", show_default=False)] = None,
+    returns: ReturnsOpt = Compounding.simple,
+    total_returns: TotalOpt = False,
+    risk_free: RiskFreeOpt = None,
     date_col: DateColOpt = None,
-    date_format: Annotated[str | None, typer.Option("--date-format", help="strftime format of the dates, "
-                           "e.g. %d/%m/%Y; default: ISO dates, YYYYMMDD, YYYYMM, 2020Q1.",
-                           show_default=False)] = None,
-    delimiter: Annotated[str | None, typer.Option("--delimiter", help="CSV separator; default: detected.",
-                         show_default=False)] = None,
-    frequency: Annotated[Frequency | None, typer.Option("--frequency", help="B W M Q A; default: "
-                         "inferred from the dates.", show_default=False)] = None,
+    date_format: DateFormatOpt = None,
+    delimiter: DelimiterOpt = None,
+    frequency: FrequencyOpt = None,
+    asset_col: AssetColOpt = "asset",
+    value_col: ValueColOpt = "value",
     min_obs: MinObsOpt = 24,
-    refuse_short: Annotated[bool, typer.Option("--refuse-short", help="Refuse the file when an asset "
-                            "has fewer than --min-obs observations (default: drop it with a warning).")]
-    = False,
-    allow_extreme: Annotated[bool, typer.Option("--allow-extreme", help="Accept returns beyond +-100% "
-                             "a period, and risk-free rates above 20% a year (median).")] = False,
+    refuse_short: RefuseShortOpt = False,
+    allow_extreme: ExtremeOpt = False,
     as_json: JsonFlag = False,
 ) -> None:
     """Read a return file, validate it and store it as a dataset snapshot.
@@ -131,10 +144,8 @@ def ingest(
     warnings.  Nothing is stored when the file is refused.
     """
     st: State = state(ctx)
-    options = ingest_options(layout, units, date_col, min_obs, returns=returns,
-                             total_returns=total_returns, risk_free=risk_free, date_format=date_format,
-                             delimiter=delimiter, frequency=frequency,
-                             on_short="refuse" if refuse_short else "drop", allow_extreme=allow_extreme)
+    options = file_options(layout, units, returns, total_returns, risk_free, date_col, date_format, delimiter,
+                           frequency, asset_col, value_col, min_obs, refuse_short, allow_extreme)
     panel = read_file(path, options)
     from panel.store import write_dataset
 

@@ -11,7 +11,9 @@ from panel.cli import output
 from panel.cli.common import (JsonFlag, RunArg, State, fail, info, parse_date, progress, state,
                               store_exists, store_for, user_errors)
 from panel.cli.model_options import ModelOptions, with_model_options
-from panel.cli.data import DateColOpt, LayoutOpt, MinObsOpt, UnitsOpt, ingest_options, read_file
+from panel.cli.data import (AssetColOpt, Compounding, DateColOpt, DateFormatOpt, DelimiterOpt, ExtremeOpt,
+                            FrequencyOpt, LayoutOpt, MinObsOpt, RefuseShortOpt, ReturnsOpt, RiskFreeOpt, TotalOpt,
+                            UnitsOpt, ValueColOpt, file_options, read_file)
 
 
 def _vintage(panel, as_of: pd.Timestamp | None, what: str):
@@ -22,6 +24,16 @@ def _vintage(panel, as_of: pd.Timestamp | None, what: str):
         fail(f"--as-of {as_of.date()} is before the first date {panel.dates[0].date()} of {what}; "
              "give a later date")
     return panel.cut(as_of)
+
+
+_FILE_PARAMS = ("layout", "units", "returns", "total_returns", "risk_free", "date_col", "date_format", "delimiter",
+                "frequency", "asset_col", "value_col", "min_obs", "refuse_short", "allow_extreme")
+
+
+def _file_options_given(ctx: typer.Context) -> bool:
+    """Whether any file option was given on the command line (they mean nothing with --data)."""
+    return any(getattr(ctx.get_parameter_source(p), "name", None) in ("COMMANDLINE", "ENVIRONMENT")
+               for p in _FILE_PARAMS)
 
 
 def latest_rows(result, ppy: int) -> tuple[list, dict]:
@@ -72,8 +84,18 @@ def fit(
                                              "file name without suffix).", show_default=False)] = None,
     layout: LayoutOpt = None,
     units: UnitsOpt = None,
+    returns: ReturnsOpt = Compounding.simple,
+    total_returns: TotalOpt = False,
+    risk_free: RiskFreeOpt = None,
     date_col: DateColOpt = None,
+    date_format: DateFormatOpt = None,
+    delimiter: DelimiterOpt = None,
+    frequency: FrequencyOpt = None,
+    asset_col: AssetColOpt = "asset",
+    value_col: ValueColOpt = "value",
     min_obs: MinObsOpt = 24,
+    refuse_short: RefuseShortOpt = False,
+    allow_extreme: ExtremeOpt = False,
     as_of: Annotated[str | None, typer.Option("--as-of", help="Data cut-off YYYY-MM-DD (a vintage); "
                                               "default: all data.", show_default=False)] = None,
     model: ModelOptions = ModelOptions(),
@@ -96,13 +118,18 @@ def fit(
     st: State = state(ctx)
     if (data is None) == (file is None):
         raise typer.BadParameter("give exactly one of --data NAME or --file PATH", param_hint="--data/--file")
+    if file is None and _file_options_given(ctx):
+        raise typer.BadParameter("the file options (--units, --layout, --risk-free, ...) go with --file; a stored "
+                                 "dataset was read with its own", param_hint="--file")
     if name is not None and file is None:
         raise typer.BadParameter("--name goes with --file (it names the dataset the file becomes)",
                                  param_hint="--name")
     cutoff = parse_date(as_of, "--as-of")
     spec = model.spec()
     if file is not None:
-        panel = read_file(file, ingest_options(layout, units, date_col, min_obs))
+        panel = read_file(file, file_options(layout, units, returns, total_returns, risk_free, date_col, date_format,
+                                             delimiter, frequency, asset_col, value_col, min_obs, refuse_short,
+                                             allow_extreme))
         dataset = (name or file.stem).strip()
         digest = panel.hash
         source = {"dataset": dataset, "file": file.name, "ingest": panel.meta.get("options")}

@@ -29,6 +29,7 @@ from rich.console import Console
 from rich.markup import escape
 
 from panel import units
+from panel.files import formula_safe_frame
 
 CAUTION = ("Caution: statistical estimates with model risk, not investment advice; "
            "follow your firm's model-risk governance.")
@@ -117,7 +118,8 @@ def emit_csv(frame) -> None:
     import pandas as pd
 
     buffer = io.StringIO()
-    clean = frame.copy()
+    clean = formula_safe_frame(frame)   # text a spreadsheet would run as a formula gets a leading '
+
     for column in clean.columns:
         if pd.api.types.is_datetime64_any_dtype(clean[column]):
             stamps = pd.to_datetime(clean[column])

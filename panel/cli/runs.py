@@ -11,8 +11,9 @@ import typer
 
 from panel import units
 from panel.cli import output
-from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, existing_folder, fail,
-                              parse_date, state, store_for, user_errors)
+from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, fail, parse_date, state,
+                              store_for, user_errors)
+from panel.files import check_target, write_atomically
 
 ENV_FIELDS = ("riskprem_version", "git_commit", "python_version", "numpy_version", "scipy_version",
               "pandas_version", "duckdb_version", "platform")
@@ -453,14 +454,17 @@ class Table(str, Enum):
 def export(ctx: typer.Context, run_id: RunArg,
            path: Annotated[Path, typer.Argument(help="Target file: .parquet or .csv.", show_default=False)],
            table: Annotated[Table, typer.Option("--table", help="Which result table.")] = Table.estimates,
+           force: Annotated[bool, typer.Option("--force", help="Replace the file if it exists (never "
+                                               "the store itself).")] = False,
            as_json: JsonFlag = False) -> None:
     """Write one result table of a run to a Parquet or CSV file (per-period decimal units, the
-    store's column names)."""
+    store's column names).  In CSV, text a spreadsheet would run as a formula (starting with =, +,
+    -, @) gets a leading single quote; Parquet keeps it as stored."""
     from panel.store import export_run
 
     st = state(ctx)
     with store_for(st) as store, user_errors():
-        written = export_run(store, run_id, path, table.value)
+        written = export_run(store, run_id, path, table.value, overwrite=force)
     if as_json:
         output.emit_json({"run_id": run_id, "table": table.value, "path": str(written),
                           "units": output.MACHINE_UNITS, "caution": output.CAUTION})
@@ -505,10 +509,11 @@ def plot(
     when = parse_date(date, "--date")
     target = out or Path(f"riskprem-run{run_id}-{chart.value}.png")
     try:
-        plots.chart_format(target)
+        chart_kind = plots.chart_format(target)
     except plots.ChartError as error:
         fail(f"--out {error}")
-    existing_folder(target, "--out")
+    with user_errors():
+        check_target(target, overwrite=True)   # a chart is redrawn in place, but never into a folder
     with store_for(st) as store, user_errors():
         inputs = run_inputs(store, run_id)
         dataset, label = _names(store).get(inputs.run["dataset_hash"]), inputs.run["label"]
@@ -541,7 +546,8 @@ def plot(
                                           title=plots.heading("Revisions across vintages", dataset, label))
         except plots.ChartError as error:
             fail(f"run {run_id}: {error}")
-    written = plots.save(fig, target)
+    with user_errors():
+        written = write_atomically(target, lambda file: file.write_bytes(plots.render(fig, chart_kind)))
     if as_json:
         output.emit_json({"run_id": run_id, "chart": chart.value, "path": str(written),
                           "caution": output.CAUTION})

@@ -7,8 +7,7 @@ from typing import Annotated
 import typer
 
 from panel.cli import output
-from panel.cli.common import (CsvFlag, JsonFlag, fail, parse_assignments, state, store_exists,
-                              store_for, user_errors)
+from panel.cli.common import CsvFlag, JsonFlag, fail, state, store_exists, store_for, user_errors
 
 store_app = typer.Typer(help="The store: facts about it, and upgrading its schema.", no_args_is_help=True)
 
@@ -70,8 +69,11 @@ def query(
     list_: Annotated[bool, typer.Option("--list", help="List the named queries and their parameters.")]
     = False,
     param: Annotated[list[str] | None, typer.Option("--param", metavar="KEY=VALUE",
-                     help="A query parameter (repeatable), e.g. --param dataset=sleeves.",
-                     show_default=False)] = None,
+                     help="A query parameter (repeatable), e.g. --param dataset=sleeves; split at the first "
+                          "'=', so a value may hold '='.", show_default=False)] = None,
+    null: Annotated[list[str] | None, typer.Option("--null", metavar="KEY", help="Pass SQL NULL for this "
+                    "parameter (repeatable), e.g. --null key for every run of oos_forecasts.",
+                    show_default=False)] = None,
     as_json: JsonFlag = False, as_csv: CsvFlag = False,
 ) -> None:
     """Run a named query of the store (SQL files in queries/) with bound parameters."""
@@ -92,7 +94,7 @@ def query(
         return
     if name is None:
         raise typer.BadParameter("give a query NAME, or --list to see them", param_hint="NAME")
-    params = parse_assignments(param, "--param")
+    params = _query_params(param, null)
     with store_for(st) as store, user_errors():
         frame = run_query(store, name, params)
     if as_json:
@@ -106,6 +108,30 @@ def query(
     output.show(output.table(f"{name} ({len(frame)} rows; numbers as stored: per-period decimals)",
                              list(frame.columns), rows, right_from=0))
     output.caution()
+
+
+def _query_params(items, nulls) -> dict[str, str | None]:
+    """``--param KEY=VALUE`` (split at the first '=': names never hold one, values may) and
+    ``--null KEY`` -> bound parameters; malformed, empty or repeated ones are usage errors."""
+    params: dict[str, str | None] = {}
+    for item in items or ():
+        name, sep, value = str(item).partition("=")
+        name, value = name.strip(), value.strip()
+        if not sep or not name.isidentifier():
+            raise typer.BadParameter(f"{item!r} is not KEY=VALUE (KEY a parameter name, see --list)",
+                                     param_hint="--param")
+        if not value:
+            raise typer.BadParameter(f"{item!r} has no value; give one, or --null {name} to pass NULL",
+                                     param_hint="--param")
+        if name in params:
+            raise typer.BadParameter(f"parameter {name!r} is given twice", param_hint="--param")
+        params[name] = value
+    for name in nulls or ():
+        name = str(name).strip()
+        if name in params:
+            raise typer.BadParameter(f"parameter {name!r} is given both as --param and --null", param_hint="--null")
+        params[name] = None
+    return params
 
 
 def _cell(value) -> str:

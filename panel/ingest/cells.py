@@ -14,6 +14,7 @@ import re
 import numpy as np
 import pandas as pd
 
+from panel.data import DAY_RANGE, first_outside_days
 from panel.ingest.errors import IngestError, shown
 from panel.ingest.readers import RawTable
 
@@ -36,6 +37,7 @@ def parse_dates(table: RawTable, column: str, date_format: str | None = None,
     if cells.dtype.kind == "M":
         missing = np.isnat(cells)
         _refuse_empty(table, column, missing)
+        _refuse_outside(table, column, cells, cells.astype("datetime64[D]").astype(str))
         return cells.astype("datetime64[D]"), False
     if cells.dtype.kind == "f":  # numeric Parquet column, e.g. 20200131
         text = np.array([None if np.isnan(v) else
@@ -66,7 +68,16 @@ def parse_dates(table: RawTable, column: str, date_format: str | None = None,
                    "date_format='%d/%m/%Y' or similar (CLI --date-format)")
         raise IngestError(f"{name}: {table.where(i)}, column {column!r}: cannot read "
                           f"{shown(text[i])} as a date; {fix}")
-    return parsed.astype("datetime64[D]"), labels
+    _refuse_outside(table, column, parsed, text)
+    return parsed, labels
+
+
+def _refuse_outside(table: RawTable, column: str, days: np.ndarray, cells: np.ndarray) -> None:
+    """Refuse a date that a panel cannot hold (beyond pandas' nanosecond timestamps)."""
+    i = first_outside_days(days)
+    if i is not None:
+        raise IngestError(f"{table.name}: {table.where(i)}, column {column!r}: date {shown(cells[i])} is "
+                          f"outside the dates riskprem can hold ({DAY_RANGE}); correct the year")
 
 
 def _refuse_empty(table: RawTable, column: str, missing: np.ndarray) -> None:
@@ -77,7 +88,7 @@ def _refuse_empty(table: RawTable, column: str, missing: np.ndarray) -> None:
 
 
 def _parse_text(text: np.ndarray, first: str, date_format: str | None):
-    """(datetime64[ns] with NaT for unreadable cells, labels flag) for a text column."""
+    """(datetime64[D] with NaT for unreadable cells, labels flag) for a text column."""
     if date_format is not None:
         return _to_datetime(text, date_format), False
     if _QUARTER.match(first):
@@ -118,7 +129,8 @@ def _to_datetime(text: np.ndarray, fmt: str) -> np.ndarray:
     parsed = pd.to_datetime(series, format=fmt, errors="coerce")
     if getattr(parsed.dt, "tz", None) is not None:
         parsed = parsed.dt.tz_localize(None)  # keep the wall-clock date
-    return parsed.dt.floor("D").to_numpy(dtype="datetime64[ns]")
+    # pandas parses far dates at a coarser unit; days keep them (a cast to ns would wrap them).
+    return parsed.to_numpy().astype("datetime64[D]")
 
 
 def parse_numbers(cells: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from panel.data import Panel
+from panel.data import DAY_RANGE, Panel, first_outside_days
 from panel.ingest.cells import parse_dates
 from panel.ingest.errors import IngestError, listed, shown
 from panel.ingest.frequency import Fitted, Misfit, check_gaps, day, fit_grid
@@ -215,8 +215,12 @@ def _pivot(records: Records, value: np.ndarray, period: np.ndarray,
     first, last = int(period.min()), int(period.max())
     matrix = np.full((last - first + 1, len(records.assets)), np.nan)
     matrix[period - first, records.asset] = value
-    ends = fitted.grid.ends(np.arange(first, last + 1)).astype("datetime64[ns]")
-    index = pd.DatetimeIndex(ends, name="date")
+    ends = fitted.grid.ends(np.arange(first, last + 1))
+    outside = first_outside_days(ends)
+    if outside is not None:   # a date just inside the range whose period ends beyond it
+        raise IngestError(f"{records.table.name}: the {fitted.grid.unit()} ending {day(ends[outside])} is "
+                          f"outside the dates riskprem can hold ({DAY_RANGE}); drop that period")
+    index = pd.DatetimeIndex(ends.astype("datetime64[ns]"), name="date")
     return pd.DataFrame(matrix, index=index, columns=list(records.assets))
 
 
@@ -231,7 +235,7 @@ def _drop_short(frame: pd.DataFrame, options: IngestOptions, name: str):
         more = f" (+{len(short) - 1} more)" if len(short) > 1 else ""
         raise IngestError(f"{name}: asset {shown(asset)} has only {count} observations, fewer "
                           f"than min_obs={options.min_obs}{more}; pass a smaller min_obs (CLI "
-                          "--min-obs) or on_short='drop' (CLI --on-short drop)")
+                          "--min-obs) or on_short='drop' (CLI: leave out --refuse-short)")
     notes = [f"asset {shown(a)} has {c} observations (fewer than min_obs={options.min_obs}); "
              "dropped" for a, c in short]
     return frame.drop(columns=[a for a, _ in short]), notes

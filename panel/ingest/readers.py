@@ -154,7 +154,7 @@ def _arrow_cells(array) -> np.ndarray:
         series = pd.to_datetime(series)
         if getattr(series.dt, "tz", None) is not None:
             series = series.dt.tz_localize(None)
-        return series.to_numpy(dtype="datetime64[ns]")
+        return series.to_numpy()   # its own unit: a cast to ns would wrap dates beyond 2262
     values = array.to_pylist()
     out = np.empty(len(values), dtype=object)
     for i, v in enumerate(values):

@@ -51,7 +51,7 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     prob = Problem(panel, spec)
     rs = prob.rs
     n_free = count_free(rs, prob.Y.shape[1])
-    _check_estimable(prob, n_free)
+    check_estimable(prob.Y, prob.panel.assets, rs)
     p0 = starting_values(prob.Y, rs) if start is None else _check_start(start, prob)
     if rs.max_sigma_diag is not None:      # start inside the cap: EM never accepts a step down
         lam, q = ms.cap_premium(p0.Lambda, p0.q, rs.max_sigma_diag, prob.packer.free_q)
@@ -107,9 +107,11 @@ def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
         **_quasi_newton_setup(prob, floor))
 
 
-def _check_estimable(prob: Problem, n_free: int) -> None:
-    """Refuse, with one line, data on which the likelihood has no proper maximum."""
-    Y, assets, rs = prob.Y, prob.panel.assets, prob.rs
+def check_estimable(Y: np.ndarray, assets, rs) -> None:
+    """Refuse, with one line (:class:`SpecError`), data on which the likelihood has no proper
+    maximum.  ``Y`` (T, N) decimal returns per period, NaN missing; ``rs`` the spec resolved for
+    them.  Cheap: the backfill planner runs it at every cut-off before fitting anything."""
+    n_free = count_free(rs, Y.shape[1])
     T, N = Y.shape
     if T < 2:
         raise SpecError(f"the panel has {T} date; estimation needs at least 2 (several years are advisable)")

@@ -38,6 +38,7 @@ class Problem:
         if np.isnan(self.Y).all(axis=0).any():
             bad = [a for a, e in zip(panel.assets, np.isnan(self.Y).all(axis=0)) if e]
             raise SpecError(f"assets with no observation: {', '.join(bad)}; drop them")
+        _check_memory(self.Y)   # first: the packer's index arrays alone grow with N^2
         self.rs: ResolvedSpec = spec.resolve(N, panel.periods_per_year, T, panel.assets)
         ppy = self.rs.ppy
         self.s2 = volatility_scale(self.Y, spec.vol_scale)
@@ -47,7 +48,6 @@ class Problem:
         self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
         self.h_prior = self._prior(spec.return_prior, units.return_variance)
         self.n_obs = int((~np.isnan(self.Y)).sum())
-        _check_memory(self.Y)
         self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
 
     def _prior(self, prior, to_variance):

@@ -25,6 +25,9 @@ from sqlalchemy import (BigInteger, Boolean, Date, DateTime, Double, Integer, Sm
 from sqlalchemy.engine import Connection
 from sqlalchemy.exc import DBAPIError
 
+from panel.data import DAY_RANGE, first_outside_days
+from panel.store.errors import StoreError
+
 _stage_numbers = itertools.count()
 
 
@@ -167,7 +170,7 @@ def read_frame(conn: Connection, statement, params: dict | None = None) -> pd.Da
     ``datetime64[us]`` (drivers return ``datetime.date`` objects, which pandas keeps as objects)."""
     result = conn.execute(statement, params or {})
     if conn.dialect.name == "duckdb":
-        return result.cursor.fetch_df()
+        return _days_checked(result.cursor.fetch_df())
     frame = pd.DataFrame(result.fetchall(), columns=list(result.keys()))
     for name in frame.columns:
         column = frame[name]
@@ -177,4 +180,18 @@ def read_frame(conn: Connection, statement, params: dict | None = None) -> pd.Da
                 frame[name] = pd.to_datetime(column).astype("datetime64[us]")
         elif isinstance(column.dtype, np.dtype) and column.dtype.kind == "M":
             frame[name] = column.astype("datetime64[us]")
+    return _days_checked(frame)
+
+
+def _days_checked(frame: pd.DataFrame) -> pd.DataFrame:
+    """``frame``, refusing a stored date that a panel cannot hold (written by another program: riskprem
+    never stores one), before it is cast to nanoseconds somewhere and shifted by centuries."""
+    for name in frame.columns:
+        column = frame[name]
+        if isinstance(column.dtype, np.dtype) and column.dtype.kind == "M":
+            outside = first_outside_days(column.to_numpy())
+            if outside is not None:
+                raise StoreError(f"the store holds the date {str(column.iloc[outside])[:10]} (column {name}), "
+                                 f"outside the dates riskprem can hold ({DAY_RANGE}); it was changed "
+                                 "outside riskprem: restore it from a backup or ingest the data again")
     return frame

@@ -13,6 +13,7 @@ fact about the store uses :func:`public_location`, and driver messages are passe
 from __future__ import annotations
 
 import importlib.util
+import logging
 import os
 import re
 import time
@@ -23,9 +24,15 @@ from sqlalchemy.engine import URL, Engine, make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 from sqlalchemy.pool import NullPool, StaticPool
 
-from panel.store.errors import StoreError, first_line, url_secret
+from panel.store.errors import DAMAGE_FIX, StoreError, first_line, is_damage, url_secret
 from panel.store.handle import Store
 from panel.store.migrate import apply_migrations, current_version, head_version, missing_write_privilege
+
+# SQLAlchemy's pool logs (with a traceback) a failed rollback of a connection it takes back, e.g.
+# after a damaged DuckDB file was met; the error itself reaches the caller, who reports it in one
+# line.  Without a handler, Python would print that log record to stderr; applications that set up
+# logging still receive it.
+logging.getLogger("sqlalchemy.pool").addHandler(logging.NullHandler())
 
 DEFAULT_LOCATION = "./riskprem.duckdb"
 ENV_VAR = "RISKPREM_STORE"
@@ -73,6 +80,15 @@ def _url_of(location: str):
     return make_url(f"duckdb:///{path}"), path
 
 
+_LOCK_WORD = re.compile(r"\block\b", re.IGNORECASE)
+
+
+def is_lock_error(line: str) -> bool:
+    """Whether a driver message says another process holds the file (DuckDB: 'Could not set lock
+    on file ... Conflicting lock is held').  A whole word: a damaged *block* is not a lock."""
+    return bool(_LOCK_WORD.search(line)) and "corrupt" not in line.lower()
+
+
 def _quiet_duckdb(dbapi_connection, _record) -> None:
     """This layer never prints: turn off DuckDB's progress bar on every new connection."""
     dbapi_connection.execute("SET enable_progress_bar = false")
@@ -100,7 +116,7 @@ def _patient_connect(display: str, read_only: bool, lock_timeout: float):
                 return dialect.connect(*cargs, **cparams)
             except dialect.loaded_dbapi.Error as error:
                 waited = time.monotonic() - start
-                if "lock" not in first_line(error).lower():
+                if not is_lock_error(first_line(error)):
                     raise
                 if waited + delay > lock_timeout:
                     raise StoreError(_lock_message(display, error, read_only, waited)) from None
@@ -110,7 +126,10 @@ def _patient_connect(display: str, read_only: bool, lock_timeout: float):
     return do_connect
 
 
-def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float) -> None:
+def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float,
+             new_file: Path | None = None) -> None:
+    """Open the first connection, waiting for another process's lock; ``new_file``: the DuckDB file
+    this opening creates (removed again when it fails)."""
     secret = url_secret(engine.url)
     start = time.monotonic()
     delay = 0.05
@@ -121,7 +140,7 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
         except DBAPIError as error:
             line = first_line(error, secret)
             waited = time.monotonic() - start
-            if "lock" in line.lower():
+            if is_lock_error(line):
                 if waited + delay > lock_timeout:
                     raise StoreError(_lock_message(display, error, read_only, waited)) from None
                 time.sleep(delay)
@@ -130,6 +149,10 @@ def _connect(engine: Engine, display: str, read_only: bool, lock_timeout: float)
             if "different configuration" in line:
                 raise StoreError(f"store {display} is already open in this process in the other mode; "
                                  "close it before opening it read-only or read-write") from None
+            if new_file is not None:
+                raise _discard_new(engine, new_file, error) from None
+            if is_damage(line):
+                raise StoreError(f"store {display} is damaged ({line}); {DAMAGE_FIX}") from None
             raise StoreError(f"cannot open store {display}: {line}") from None
         except (NoSuchModuleError, ImportError) as error:
             raise StoreError(f"cannot open store {display}: {first_line(error, secret)}; install the driver "
@@ -178,11 +201,16 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
         event.listen(engine, "connect", _quiet_duckdb)
         if not hold:
             event.listen(engine, "do_connect", _patient_connect(display, read_only, lock_timeout))
+    new_file = path is not None and not read_only and not path.exists()
     try:
-        _connect(engine, display, read_only, lock_timeout)
+        _connect(engine, display, read_only, lock_timeout, path if new_file else None)
         try:
             version = _prepare(engine, display, read_only)
+            if new_file:
+                _checkpoint(engine, path)
         except DBAPIError as error:   # e.g. a database user without the privileges it needs
+            if new_file:
+                raise _discard_new(engine, path, error) from None
             raise StoreError(f"cannot use store {display}: {first_line(error, url_secret(url))}; ask the "
                              "store's owner for access (README: Team store)") from None
         head = head_version()
@@ -195,10 +223,40 @@ def open_store(location: str | os.PathLike | None = None, *, read_only: bool = F
         raise
 
 
+def _checkpoint(engine: Engine, path: Path) -> None:
+    """Write a new DuckDB store's schema into its file now.  DuckDB checkpoints again on closing,
+    but silently: on a nearly full device a new store would report success and then be unreadable
+    (its log cannot be replayed)."""
+    raw = engine.raw_connection()
+    try:
+        raw.driver_connection.execute("CHECKPOINT")
+    except engine.dialect.loaded_dbapi.Error as error:
+        raw.invalidate()   # the database is unusable now: close it without the pool's rollback
+        raise _discard_new(engine, path, error) from None
+    raw.close()
+
+
+def _discard_new(engine: Engine, path: Path, error: BaseException) -> StoreError:
+    """Remove the half-made files of a new store that could not be created; the one-line error."""
+    engine.dispose()
+    for leftover in (path, Path(str(path) + ".wal")):
+        try:
+            leftover.unlink(missing_ok=True)
+        except OSError:
+            pass
+    reason = first_line(error)
+    reason = reason[reason.rfind(": ") + 2:] if "No space left" in reason else reason
+    return StoreError(f"cannot create store {path}: {reason}; free space on that device or give another "
+                      "store location (nothing was written)")
+
+
 def _prepare(engine: Engine, display: str, read_only: bool) -> int:
     """The store's schema version after creating the schema in an empty database (read-write)."""
     with engine.connect() as conn:
-        version = current_version(conn)
+        try:
+            version = current_version(conn)
+        except StoreError as error:
+            raise StoreError(f"store {display}: {error}") from None
     if version is None:
         raise StoreError(f"{display} is not a riskprem store (it has tables but no schema_version); "
                          "give another store location")

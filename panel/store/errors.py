@@ -26,3 +26,35 @@ def url_secret(url) -> str | None:
         return str(url.password)
     value = url.query.get("password")
     return str(value) if isinstance(value, str) and value else None
+
+
+#: What to do about a damaged store file.
+DAMAGE_FIX = ("restore it from a backup copy, or ingest and fit into a new store (riskprem never repairs a "
+              "store in place)")
+
+
+def is_damage(line: str) -> bool:
+    """Whether a driver message says the database file is damaged."""
+    return any(word in line.lower() for word in ("corrupt", "checksum mismatch", "does not match stored checksum"))
+
+
+def damage_in(error: BaseException) -> str | None:
+    """The line of a driver error (any line: DuckDB puts the cause under a rollback failure) that
+    says the database file is damaged, or None."""
+    inner = getattr(error, "orig", None) or error
+    return next((line.strip() for line in str(inner).splitlines() if is_damage(line)), None)
+
+
+def database_failure(error: BaseException) -> StoreError | None:
+    """A driver error met while reading or writing an open store (a damaged DuckDB file, a server
+    that went away) as a one-line :class:`StoreError`; None for any other exception."""
+    inner = getattr(error, "orig", None) or error
+    module = type(inner).__module__.split(".")[0]
+    if not (module in ("duckdb", "_duckdb", "psycopg", "psycopg2")
+            or type(error).__module__.startswith("sqlalchemy.exc")):
+        return None
+    line, damage = first_line(error), damage_in(error)
+    if damage is not None:
+        return StoreError(f"the store is damaged ({damage}); {DAMAGE_FIX}")
+    return StoreError(f"the store could not be read or written: {line}; check that it is reachable and "
+                      "intact (`riskprem store info`)")

@@ -7,7 +7,7 @@ from pathlib import Path
 
 from sqlalchemy.engine import Engine
 
-from panel.store.errors import StoreError, first_line, url_secret
+from panel.store.errors import DAMAGE_FIX, StoreError, damage_in, first_line, url_secret
 from panel.store.versions import head_version
 
 
@@ -32,7 +32,11 @@ class Store:
         return self.engine.dialect.name == "duckdb"
 
     def error_line(self, error: BaseException) -> str:
-        """First line of a driver error, with this store's password (if its URL has one) masked."""
+        """First line of a driver error, with this store's password (if its URL has one) masked; for a
+        damaged file, what is damaged and how to recover."""
+        damage = damage_in(error)
+        if damage is not None:
+            return f"the store is damaged ({damage}); {DAMAGE_FIX}"
         return first_line(error, url_secret(self.engine.url))
 
     def close(self) -> None:

@@ -59,8 +59,11 @@ def current_version(conn: Connection) -> int | None:
     but is not a riskprem store."""
     tables = live_tables(conn)
     if "schema_version" in tables:
-        return int(conn.execute(select(func.coalesce(func.max(schema.schema_version.c.version), 0)))
-                   .scalar_one())
+        version = conn.execute(select(func.max(schema.schema_version.c.version))).scalar_one()
+        if version is None and len(tables) > 1:   # every migration writes its row with its tables
+            raise StoreError("its schema_version table is empty (changed outside riskprem), so its schema "
+                             "is unknown; restore the store from a backup copy")
+        return int(version or 0)
     return 0 if not tables else None
 
 

@@ -110,6 +110,8 @@ def run_query(store: Store, name: str, params: dict | None = None) -> pd.DataFra
         raise StoreError(f"query {name!r} has no parameter(s) {', '.join(extra)}; its parameters: "
                          f"{', '.join(needed) or 'none'}")
     if "dataset" in params:
+        if params["dataset"] is None:
+            raise StoreError(f"query {name!r}: parameter dataset cannot be NULL; give a dataset name or hash")
         params["dataset"] = resolve_dataset(store, params["dataset"])
     try:
         with store.engine.connect() as conn:

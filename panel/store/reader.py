@@ -8,9 +8,10 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import func, select
+from sqlalchemy import String, func, select
 
 from panel.data import Panel, canonical_hash
+from panel.files import FORMULA_STARTS, OutputError, check_target, formula_safe_frame, write_atomically
 from panel.store import schema
 from panel.store._io import read_frame
 from panel.store.handle import Store
@@ -197,37 +198,60 @@ def find_run(store: Store, dataset_hash: str, backfill_key: str, as_of) -> int |
     return None if found is None else int(found)
 
 
-def export_run(store: Store, run_id: int, path, table: str = "estimates") -> Path:
+def export_run(store: Store, run_id: int, path, table: str = "estimates", overwrite: bool = False) -> Path:
     """Write one result table of a run (default ``estimates``; per-period units, PanelFit columns) to
     ``path``: Parquet for ``.parquet``/``.pq``, CSV for ``.csv``.  DuckDB writes the file itself
-    (COPY); other databases go through pandas.  Returns the path."""
+    (COPY); other databases go through pandas.  Returns the path.
+
+    The store itself is never a target; an existing file is replaced only with ``overwrite``; the
+    file appears whole or not at all (:mod:`panel.files`).  In CSV, text that a spreadsheet would run
+    as a formula (an asset named ``=1+2``) gets a single quote in front; Parquet keeps it as stored."""
     target = Path(path)
     suffix = target.suffix.lower()
     if suffix not in (".parquet", ".pq", ".csv"):
         raise StoreError(f"cannot export to {target.name}: use a .parquet or .csv file name")
     if table not in schema.RESULT_TABLES:
         raise StoreError(f"unknown result table {table!r}; use {', '.join(schema.RESULT_TABLES)}")
-    if not target.parent.is_dir():
-        raise StoreError(f"cannot export to {target}: folder {target.parent} does not exist")
+    store_files = () if store.path is None else (store.path, Path(str(store.path) + ".wal"))
+    try:
+        target = check_target(target, protected=store_files, overwrite=overwrite)
+    except OutputError as error:
+        raise StoreError(str(error)) from None
     key = get_run(store, run_id)["id"]
     source = schema.RESULT_TABLES[table]
     columns = [c for c in source.columns if c.name != "run_id"]
+    csv = suffix == ".csv"
     with store.engine.connect() as conn:
         if store.is_duckdb:
             quote = conn.dialect.identifier_preparer.quote
-            names = ", ".join(quote(c.name) for c in columns)
+            names = ", ".join(f"{_formula_safe_sql(quote(c.name))} AS {quote(c.name)}"
+                              if csv and isinstance(c.type, String) else quote(c.name) for c in columns)
             order = ", ".join(quote(n) for n in schema.RESULT_ORDER[table])
             sql = f"SELECT {names} FROM {quote(source.name)} WHERE run_id = ? ORDER BY {order}"
             relation = conn.connection.dbapi_connection.sql(sql, params=[key])
-            if suffix == ".csv":
-                relation.write_csv(str(target), header=True)
-            else:
-                relation.write_parquet(str(target))
+
+            def write(file: Path) -> None:
+                if csv:
+                    relation.write_csv(str(file), header=True)
+                else:
+                    relation.write_parquet(str(file))
         else:
             frame = read_frame(conn, select(*columns).where(source.c.run_id == key)
                                .order_by(*(source.c[n] for n in schema.RESULT_ORDER[table])))
-            if suffix == ".csv":
-                frame.to_csv(target, index=False)
-            else:
-                frame.to_parquet(target, index=False)
+
+            def write(file: Path) -> None:
+                if csv:
+                    formula_safe_frame(frame).to_csv(file, index=False)
+                else:
+                    frame.to_parquet(file, index=False)
+        try:
+            write_atomically(target, write)
+        except OutputError as error:
+            raise StoreError(str(error)) from None
     return target
+
+
+def _formula_safe_sql(column: str) -> str:
+    """:func:`panel.files.formula_safe` in SQL, for a text column (DuckDB writes the CSV itself)."""
+    starts = ", ".join("'" + c.replace("'", "''") + "'" for c in FORMULA_STARTS)
+    return f"CASE WHEN substr({column}, 1, 1) IN ({starts}) THEN '''' || {column} ELSE {column} END"

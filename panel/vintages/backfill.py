@@ -49,7 +49,7 @@ import numpy as np
 import pandas as pd
 
 from panel.data import Panel
-from panel.model.fit import fit
+from panel.model.fit import check_estimable, fit
 from panel.model.params import Params
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec, SpecError
@@ -101,17 +101,30 @@ def cutoff_dates(panel: Panel, start=None, end=None, every: int = 1) -> pd.Datet
     return dates
 
 
-def vintage_settings(fitted: PanelFit, dataset_hash: str, window) -> dict:
+def vintage_settings(fitted: PanelFit, dataset_hash: str, window, chain: int | None = None) -> dict:
     """A vintage's run settings: ``fitted.settings()`` (spec, start, as_of) with the full dataset's
-    hash and the window."""
-    return {**fitted.settings(), "dataset_hash": dataset_hash, "window": Window.parse(window).text}
+    hash, the window and the warm-start chain length (:func:`effective_chain`; None: a backfill
+    stored before the chain was recorded)."""
+    settings = {**fitted.settings(), "dataset_hash": dataset_hash, "window": Window.parse(window).text}
+    return settings if chain is None else {**settings, "chain": int(chain)}
 
 
-def settings_key(dataset_hash: str, spec: ModelSpec | None = None, window="expanding") -> str:
+def effective_chain(chain: int, warm_start: bool = True) -> int:
+    """The chain length that decides a backfill's starting values: every vintage starts cold without
+    warm starts, as with chains of one."""
+    return int(chain) if warm_start else 1
+
+
+def settings_key(dataset_hash: str, spec: ModelSpec | None = None, window="expanding",
+                 chain: int | None = None) -> str:
     """The backfill key shared by every vintage of a backfill of ``dataset_hash`` with these
-    settings (what the store computes from a vintage's settings)."""
+    settings (what the store computes from a vintage's settings).  The chain is part of it: a
+    backfill run again with another ``chain`` is another backfill, never a mix of both.
+    ``chain=None`` gives the key of backfills stored before the chain was recorded."""
     settings = {"spec": (spec or ModelSpec()).to_dict(), "dataset_hash": dataset_hash,
                 "window": Window.parse(window).text}
+    if chain is not None:
+        settings["chain"] = int(chain)
     return backfill_key(dataset_hash, json_ready(settings, "backfill settings"))
 
 
@@ -172,19 +185,35 @@ def plan_backfill(store: Store, dataset: str, spec: ModelSpec | None = None, *, 
     digest = resolve_dataset(store, dataset)
     panel = load_panel(store, digest)
     dates = cutoff_dates(panel, start, end, every)
-    for as_of in dates:
-        data = vintage_panel(panel, as_of, w)
-        if not data.assets:
-            raise BackfillError(f"no observation up to cut-off {as_of.date()}; start the backfill later")
-        try:
-            spec.resolve(len(data.assets), data.periods_per_year, len(data.dates), data.assets)
-        except SpecError as error:
-            raise SpecError(f"at cut-off {as_of.date()}: {error}") from None
-    key = settings_key(digest, spec, w)
+    for i, as_of in enumerate(dates):
+        problem = _refusal(panel, as_of, w, spec)
+        if problem is None:
+            continue
+        # A start too early would fail on every retry: name the first cut-off that can be fitted.
+        later = None if i else next((d for d in panel.dates[panel.dates > as_of]
+                                     if _refusal(panel, d, w, spec) is None), None)
+        if later is not None:
+            raise BackfillError(f"at the first cut-off {as_of.date()}: {problem}; start the backfill at "
+                                f"{later.date()} or later (--start), the first cut-off with enough data")
+        raise SpecError(f"at cut-off {as_of.date()}: {problem}")
+    key = settings_key(digest, spec, w, effective_chain(chain, warm_start))
     vintages = tuple(Vintage(as_of=d, chain=i // chain, position=i, stored=find_run(store, digest, key, d))
                      for i, d in enumerate(dates))
     return BackfillPlan(panel=panel, dataset_hash=digest, spec=spec, window=w, key=key,
                         warm_start=bool(warm_start), chain=int(chain), label=label, vintages=vintages)
+
+
+def _refusal(panel: Panel, as_of: pd.Timestamp, window: Window, spec: ModelSpec) -> str | None:
+    """Why a vintage at ``as_of`` could not be fitted (the fit's own up-front refusals), or None."""
+    data = vintage_panel(panel, as_of, window)
+    if not data.assets:
+        return "no observation up to it"
+    try:
+        rs = spec.resolve(len(data.assets), data.periods_per_year, len(data.dates), data.assets)
+        check_estimable(data.values.to_numpy(dtype=float), data.assets, rs)
+    except SpecError as error:
+        return str(error)
+    return None
 
 
 # ---------------------------------------------------------------------------------------------
@@ -386,7 +415,8 @@ def run_backfill(store: Store, plan: BackfillPlan, *, workers: int | None = 1, s
 def _store_vintage(store: Store, plan: BackfillPlan, outcome: VintageOutcome, parent: int | None) -> StoredVintage:
     fitted = outcome.fit
     run, tables = from_fit(fitted, dataset_hash=plan.dataset_hash, as_of=outcome.as_of.date(), kind=KIND,
-                           settings=vintage_settings(fitted, plan.dataset_hash, plan.window),
+                           settings=vintage_settings(fitted, plan.dataset_hash, plan.window,
+                                                     effective_chain(plan.chain, plan.warm_start)),
                            parent_run=parent, label=plan.label, started_utc=outcome.started_utc,
                            finished_utc=outcome.finished_utc, **outcome.environment)
     run_id = write_run(store, run, tables)
@@ -445,11 +475,16 @@ def find_backfill(store: Store, dataset: str, *, key: str | None = None, spec: M
     if not backfills:
         raise BackfillError(f"dataset {name!r} has no backfill in {store.display}; run `riskprem backfill` first")
     if spec is not None or window is not None:
-        want = settings_key(backfills[0].dataset_hash, spec, "expanding" if window is None else window)
-        hits = [b for b in backfills if b.key == want]
+        window = "expanding" if window is None else window
+        # any chain (and backfills stored before the chain was recorded): the model settings decide
+        hits = [b for b in backfills
+                if b.key == settings_key(b.dataset_hash, spec, window, b.settings.get("chain"))]
         if not hits:
             raise BackfillError(f"no backfill of {name!r} with these settings ({_choices(backfills)}); "
                                 "give the settings it was run with or --key")
+        if len(hits) > 1:
+            raise BackfillError(f"dataset {name!r} has {len(hits)} backfills with these settings and other "
+                                f"--chain values ({_choices(hits)}); choose one with --key")
         return hits[0]
     if key:
         prefix = str(key).strip().lower()
@@ -466,4 +501,6 @@ def find_backfill(store: Store, dataset: str, *, key: str | None = None, spec: M
 
 
 def _choices(backfills: list[BackfillInfo]) -> str:
-    return "stored: " + ", ".join(f"key {b.key[:10]} {b.window} {b.n_vintages} vintages" for b in backfills[:6])
+    return "stored: " + ", ".join(f"key {b.key[:10]} {b.window} {b.n_vintages} vintages"
+                                  + (f" (chain {b.settings['chain']})" if b.settings.get("chain") else "")
+                                  for b in backfills[:6])

@@ -21,7 +21,11 @@ from __future__ import annotations
 import concurrent.futures as cf
 import multiprocessing
 import os
+import re
 import signal
+import socket
+import threading
+import time
 
 import numpy as np
 
@@ -31,6 +35,13 @@ from panel.vintages.errors import BackfillError
 
 #: How long to try reaching a Dask scheduler, and then for its first worker, before giving up.
 DASK_CONNECT_TIMEOUT = "10s"
+#: How long a first plain TCP connection to the scheduler's port may take (an address where nothing
+#: listens is refused at once, instead of after Dask's retries).
+PROBE_TIMEOUT = 3.0
+
+#: A scheduler address: ``[PROTOCOL://]HOST:PORT`` (Dask's form; tcp when no protocol is given).
+_ADDRESS = re.compile(r"^(?:(?P<scheme>tcp|tls|ws|wss)://)?(?P<host>\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9._-]+)"
+                      r":(?P<port>\d{1,5})/?$")
 
 #: What must agree between the coordinator and every Dask worker: (name in messages, column of
 #: :func:`~panel.store.environment.run_environment`).
@@ -41,8 +52,25 @@ FINGERPRINT = (("riskprem", "riskprem_version"), ("Python", "python_version"), (
 _SAME_STACK = "install the same riskprem and libraries on the workers, or run without --scheduler"
 
 
-def _ignore_sigint() -> None:  # worker processes: Ctrl-C is the coordinator's to handle
+#: Seconds between a local worker's checks that its coordinator still lives.
+PARENT_POLL = 0.25
+
+
+def _worker_start(coordinator: int) -> None:
+    """Initializer of each local worker process: Ctrl-C is the coordinator's to handle, and the
+    worker ends itself when the coordinator is gone (killed, even by SIGKILL, which leaves no chance
+    to stop the pool): orphaned fits would otherwise run on for minutes."""
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    threading.Thread(target=_watch_coordinator, args=(coordinator,), daemon=True,
+                     name="riskprem-coordinator-watch").start()
+
+
+def _watch_coordinator(coordinator: int) -> None:
+    # An orphan is re-parented (to init or a subreaper), so its parent id changes.  Portable, unlike
+    # Linux's PR_SET_PDEATHSIG, and the check runs while a fit holds the GIL (threads switch).
+    while os.getppid() == coordinator:
+        time.sleep(PARENT_POLL)
+    os._exit(70)
 
 
 def environment_fingerprint() -> dict[str, str | None]:
@@ -117,7 +145,8 @@ class _ProcessPool:
     def __init__(self, workers: int):
         self.capacity = workers
         self.where = f"{workers} local processes"
-        self.executor = cf.ProcessPoolExecutor(max_workers=workers, initializer=_ignore_sigint,
+        self.executor = cf.ProcessPoolExecutor(max_workers=workers, initializer=_worker_start,
+                                               initargs=(os.getpid(),),
                                                mp_context=multiprocessing.get_context("spawn"))
 
     def submit(self, fn, arg):
@@ -141,12 +170,37 @@ class _ProcessPool:
             process.join(timeout=5)
 
 
+def scheduler_address(text: str) -> str:
+    """``text`` if it has the form of a Dask scheduler address (``tcp://HOST:PORT``, ``tls://``,
+    ``ws://``, ``wss://`` or plain ``HOST:PORT``), else a one-line :class:`BackfillError`.  Checked
+    before connecting: Dask takes 20 s to give up on a malformed address."""
+    found = _ADDRESS.match(str(text).strip())
+    if found is None or not 0 < int(found["port"]) < 65536:
+        raise BackfillError(f"--scheduler {text!r} is not a scheduler address; give tcp://HOST:PORT (the "
+                            "address `dask scheduler` prints, e.g. tcp://10.0.0.5:8786)")
+    return str(text).strip()
+
+
+def _probe(address: str) -> None:
+    """Refuse at once a scheduler address whose host is unknown or where nothing listens."""
+    found = _ADDRESS.match(address)
+    host, port = found["host"].strip("[]"), int(found["port"])
+    try:
+        socket.create_connection((host, port), timeout=PROBE_TIMEOUT).close()
+    except OSError as error:
+        reason = error.strerror or (str(error) or type(error).__name__)
+        raise BackfillError(f"cannot reach the Dask scheduler at {address} ({reason.lower()}); check the "
+                            "address (tcp://HOST:PORT) and that the scheduler runs") from None
+
+
 class _DaskPool:
     """Fits submitted to an existing Dask distributed scheduler."""
 
     def __init__(self, address: str, workers: int | None):
         from distributed import Client, as_completed
 
+        address = scheduler_address(address)
+        _probe(address)
         try:
             self.client = Client(address, timeout=DASK_CONNECT_TIMEOUT, set_as_default=False)
         except (OSError, TimeoutError, ValueError) as error:
