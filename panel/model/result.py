@@ -25,8 +25,9 @@ class CrossSection:
     ``mean`` (n,) and ``cov`` (n, n) over ``assets`` (those active at the date), per period;
     ``prob_positive[i] = P(mu_i > 0)``; ``prob_greater.loc[i, j] = P(mu_i > mu_j)``.  A Bayesian
     run's posterior at a date is a mixture of normals (one per parameter draw): ``mean`` and ``cov``
-    are the mixture's moments and ``mixture`` holds its probabilities ``(prob_positive (n,),
-    prob_greater (n, n))``, which the properties then return instead of the normal ones.
+    are the mixture's moments and ``mixture`` holds its probabilities and quantiles
+    ``(prob_positive (n,), prob_greater (n, n), q05 (n,), q95 (n,))``: the properties then return
+    those instead of the normal ones, and :meth:`table` adds ``q05`` and ``q95``.
     """
 
     date: pd.Timestamp
@@ -63,9 +64,12 @@ class CrossSection:
         return pd.DataFrame(out, index=list(self.assets), columns=list(self.assets))
 
     def table(self) -> pd.DataFrame:
-        """One row per asset: mean, std, P(mu > 0), ranked by mean (highest first)."""
+        """One row per asset: mean, std, P(mu > 0) (a mixture: and its 5% and 95% quantiles),
+        ranked by mean (highest first)."""
         frame = pd.DataFrame({"asset": self.assets, "mean": self.mean, "std": self.std,
                               "prob_positive": self.prob_positive})
+        if self.mixture is not None:
+            frame["q05"], frame["q95"] = self.mixture[2], self.mixture[3]
         return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
 
 
