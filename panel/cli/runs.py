@@ -540,7 +540,7 @@ def plot(
     import pandas as pd
 
     from panel import plots
-    from panel.vintages.reproduce import evaluated_run, run_inputs, vintage_history
+    from panel.vintages.reproduce import run_inputs, stored_cross_section, vintage_history
     from panel.store import run_tables
 
     st = state(ctx)
@@ -571,8 +571,7 @@ def plot(
                                           title=plots.heading("Premium paths", dataset, label),
                                           shared_scale=same_scale)
             elif chart == Chart.cross_section:
-                result = evaluated_run(store, run_id)
-                cs = result.cross_section(when, kind.value)
+                cs, _ = stored_cross_section(store, run_id, when, kind.value)   # Bayes: over its draws
                 fig = plots.cross_section_chart(cs.table(), ppy, cs.date, kind.value, as_of,
                                                 title=plots.heading("Cross-section", dataset, label))
             else:
