@@ -99,6 +99,10 @@ OPTIONS = (
         "--seed", min=0, metavar="S", help="With --bayes: root seed (default 0); each cut-off draws "
                                            "its own stream from it, so runs reproduce exactly.",
         show_default=False)], None),
+    ("summary_draws", Annotated[int | None, typer.Option(
+        "--summary-draws", min=1, metavar="M", help="With --bayes: parameter draws the premium "
+        "summaries (bands, probabilities) mix over, and the run stores (default 100).",
+        show_default=False)], None),
     ("prior", Annotated[list[str] | None, typer.Option(
         "--prior", metavar="NAME=VALUE",
         help="With --bayes: a prior, volatilities in % a year: premium_vol=2 (scale of each OWN "
@@ -107,7 +111,7 @@ OPTIONS = (
              "return_vol_shape=2. Repeatable.", show_default=False)], None),
 )
 #: The options that only Bayesian estimation takes (a profile may set them with bayes = true).
-BAYES_OPTIONS = ("draws", "chains", "warmup", "seed", "prior")
+BAYES_OPTIONS = ("draws", "chains", "warmup", "seed", "summary_draws", "prior")
 #: Mergeable NAME=VALUE options: a profile's entries and the typed ones merge by name.
 ASSIGNMENTS = {"fix": "--fix", "prior": "--prior"}
 DEFAULTS = {name: default for name, _, default in OPTIONS}
@@ -144,6 +148,7 @@ class ModelOptions:
     chains: int | None = None
     warmup: int | None = None
     seed: int | None = None
+    summary_draws: int | None = None
     prior: tuple[str, ...] = ()
     #: The profile's name and its values ((option, value) pairs), if one was asked for.
     profile: str | None = None
@@ -203,7 +208,7 @@ class ModelOptions:
             extra["time_budget"] = v["time_budget"]   # a non-finite one is refused in one line later
         if v["bayes"]:
             extra["estimation"] = "bayes"
-        for name in ("draws", "chains", "warmup", "seed"):
+        for name in ("draws", "chains", "warmup", "seed", "summary_draws"):
             if v[name] is not None:
                 extra[name] = v[name]
         if v["prior"]:
