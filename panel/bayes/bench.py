@@ -24,8 +24,12 @@ def main(argv=None) -> int:
     parser.add_argument("--quick", action="store_true", help="small panel, short chains")
     parser.add_argument("--threads", type=int, default=1, help="BLAS threads (default 1)")
     args = parser.parse_args(argv)
+    # ``python -m panel.bayes.bench`` has loaded numpy (the package's __init__) before this line, so
+    # the limit goes through riskprem's own threadpoolctl limit around fit and sample
+    # (panel.threads); the variables still reach worker processes.
+    os.environ["RISKPREM_BLAS_THREADS"] = str(args.threads)
     for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ[var] = str(args.threads)       # before numpy loads BLAS (lazy imports below)
+        os.environ[var] = str(args.threads)
     import time
 
     import numpy as np
