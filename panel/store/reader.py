@@ -139,12 +139,16 @@ def is_bayes(run: dict) -> bool:
 
 def run_tables(store: Store, run_id: int, kinds=None) -> dict[str, pd.DataFrame]:
     """A run's result tables keyed by ``PanelFit`` attribute, with the PanelFit columns, rows sorted by
-    their keys (see ``schema.RESULT_ORDER``); ``kinds``: only these tables (default all)."""
-    key = get_run(store, run_id)["id"]
+    their keys (see ``schema.RESULT_ORDER``); ``kinds``: only these tables (default all the run
+    has: ``posterior_draws`` only for a Bayesian run)."""
+    run = get_run(store, run_id)
+    key = run["id"]
+    if kinds is None:           # every table of the run: posterior draws only for a Bayesian one
+        kinds = [k for k in schema.RESULT_TABLES if k != "posterior_draws" or is_bayes(run)]
     out = {}
     with store.engine.connect() as conn:
         for kind, table in schema.RESULT_TABLES.items():
-            if kinds is not None and kind not in kinds:
+            if kind not in kinds:
                 continue
             statement = (select(*(c for c in table.columns if c.name != "run_id"))
                          .where(table.c.run_id == key)

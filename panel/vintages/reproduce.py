@@ -336,7 +336,7 @@ def reproduce(store: Store, run_id: int, *, rtol: float = 1e-10, atol: float = 0
         rebuilt["posterior_draws"] = result.posterior.draw_rows()
     diffs = [compare_scalars(inputs.run, result, rtol, atol)]
     for name in TABLE_KEYS:
-        if name not in rebuilt and len(recorded[name]) == 0:
+        if name not in rebuilt and name not in recorded:
             continue        # an ML run has no posterior draws
         diffs.append(compare_table(name, recorded[name], rebuilt.get(name, recorded[name].iloc[:0]),
                                    rtol, atol))
