@@ -177,9 +177,16 @@ def test_a_version_2_store_upgrades_and_its_runs_still_read_and_reproduce(backen
         insert_run(conn, _run_row(run), {k: f.drop(columns=list(schema.BAYES_COLUMNS.get(k, ())))
                                          for k, f in checked.items()})
     engine.dispose()
-    with open_store(location) as store:
+    with open_store(location, read_only=True) as store:
         assert store.schema_version == 2
-        assert upgrade(store) == [3]
+    from typer.testing import CliRunner
+
+    from panel.cli.app import app
+
+    done = CliRunner().invoke(app, ["--store", location, "store", "upgrade"], catch_exceptions=False)
+    assert done.exit_code == 0, done.output
+    with open_store(location) as store:
+        assert store.schema_version == 3 and upgrade(store) == []
         tables = run_tables(store, 1)
         assert list(tables["parameters"].columns) == ["name", "row", "col", "value", "std_error"]
         assert reproduce(store, 1).ok
