@@ -7,6 +7,7 @@ from typing import Annotated
 
 import typer
 
+from panel import units
 from panel.cli import output
 from panel.cli.common import (JsonFlag, RunArg, State, existing_folder, fail, info, parse_date,
                               progress, state, store_exists, store_for, user_errors)
@@ -200,6 +201,35 @@ def print_mixing(status: str, parameters, chains: int) -> None:
 
     text, style = output.mixing(status, *mixing_numbers(parameters), chains)
     output.line(f"status: {status} - {text}", style=style)
+
+
+#: Posterior rows ``show`` prints for a Bayesian run, with their display conversion.
+_POSTERIOR_ROWS = {"loading": ("premium loading", "premium_loading"),
+                   "idio_premium_var": ("own premium vol", "premium_var"),
+                   "premium_cov": ("premium vol", "premium_var"),
+                   "return_cov": ("return-shock vol", "return_var"),
+                   "return_idio_var": ("own return-shock vol", "return_var")}
+
+
+def print_posterior(parameters, status: str, chains: int, ppy: int) -> None:
+    """A Bayesian run's parameter posterior (% a year) and its mixing status."""
+    from panel.bayes.diagnostics import annualise
+
+    print_mixing(status, parameters, chains)
+    post = parameters[parameters["name"].isin(list(_POSTERIOR_ROWS)) & parameters["rhat"].notna()]
+    post = post[(post["name"] != "return_cov") | (post["row"] == post["col"])]
+    rows = []
+    for r in post.itertuples(index=False):
+        label, kind = _POSTERIOR_ROWS[r.name]
+        lo, mid, hi = (100 * float(annualise(getattr(r, c), kind, ppy))
+                         for c in ("q05", "q50", "q95"))
+        rows.append((label + (f" {r.col}" if r.name == "loading" else ""), r.row, output.num(mid, 2),
+                     f"[{output.num(lo, 2)}, {output.num(hi, 2)}]", output.num(r.rhat, 3),
+                     output.num(min(r.ess_bulk, r.ess_tail), 0)))
+    output.show(output.table(
+        f"Parameter posterior, % a year (median and 90% interval; premium vol = sqrt(q x {ppy}^3))",
+        ["parameter", "asset", "median", "90% interval", "split R-hat", "ESS"], rows, right_from=2,
+        caption=units.CONVENTION_NOTE + " The table above shows the posterior-mean parameters."))
 
 
 def _env_rows(reproduction, verbose: bool):

@@ -163,7 +163,9 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
                              f"return-shock vol = sqrt(h x {ppy}))", headers, rows,
                              caption=units.CONVENTION_NOTE))
     if inputs.spec.bayes:
-        _show_posterior(tables["parameters"], run["status"], inputs.spec.chains, ppy)
+        from panel.cli.fitting import print_posterior
+
+        print_posterior(tables["parameters"], run["status"], inputs.spec.chains, ppy)
     est = tables["estimates"]
     last = est[pd.to_datetime(est["date"]) == pd.Timestamp(run["as_of"])].set_index("asset")
     rows = [(a, output.num(output.premium_pct(last.loc[a, "filtered_mean"], ppy), 1),
@@ -172,37 +174,6 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     output.show(output.table(f"Premia at {output.day(run['as_of'])}, annualised % (x{ppy}); filtered = "
                              "smoothed at the as-of date", ["asset", "premium", "90% band"], rows))
     output.caution()
-
-
-#: Posterior rows ``show`` prints for a Bayesian run, with their display conversion.
-_POSTERIOR_ROWS = {"loading": ("premium loading", "premium_loading"),
-                   "idio_premium_var": ("own premium vol", "premium_var"),
-                   "premium_cov": ("premium vol", "premium_var"),
-                   "return_cov": ("return-shock vol", "return_var"),
-                   "return_idio_var": ("own return-shock vol", "return_var")}
-
-
-def _show_posterior(parameters, status: str, chains: int, ppy: int) -> None:
-    """A Bayesian run's parameter posterior (% a year) and its mixing status."""
-    from panel.bayes.diagnostics import annualise, mixing_numbers
-
-    from panel.cli.fitting import print_mixing
-
-    print_mixing(status, parameters, chains)
-    post = parameters[parameters["name"].isin(list(_POSTERIOR_ROWS)) & parameters["rhat"].notna()]
-    post = post[(post["name"] != "return_cov") | (post["row"] == post["col"])]
-    rows = []
-    for r in post.itertuples(index=False):
-        label, kind = _POSTERIOR_ROWS[r.name]
-        lo, mid, hi = (100 * float(annualise(getattr(r, c), kind, ppy))
-                         for c in ("q05", "q50", "q95"))
-        rows.append((label + (f" {r.col}" if r.name == "loading" else ""), r.row, output.num(mid, 2),
-                     f"[{output.num(lo, 2)}, {output.num(hi, 2)}]", output.num(r.rhat, 3),
-                     output.num(min(r.ess_bulk, r.ess_tail), 0)))
-    output.show(output.table(
-        f"Parameter posterior, % a year (median and 90% interval; premium vol = sqrt(q x {ppy}^3))",
-        ["parameter", "asset", "median", "90% interval", "split R-hat", "ESS"], rows, right_from=2,
-        caption=units.CONVENTION_NOTE + " The table above shows the posterior-mean parameters."))
 
 
 def _run_ppy(run: dict, layout: dict) -> int:
