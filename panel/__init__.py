@@ -23,6 +23,7 @@ _EXPORTS = {
     "PanelFit": "panel.model.result", "CrossSection": "panel.model.result",
     "ModelSpec": "panel.model.spec", "Prior": "panel.model.spec", "InitialPremium": "panel.model.spec",
     "VolScale": "panel.model.spec", "SpecError": "panel.model.spec",
+    "Priors": "panel.bayes.priors",
 }
 
 __all__ = sorted(_EXPORTS) + ["__version__"]

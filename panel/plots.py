@@ -121,15 +121,30 @@ def _date_axis(ax, dates, max_ticks: int = 7) -> None:
     ax.xaxis.set_minor_locator(NullLocator())
 
 
+def band_edges(mean, std, ppy: int, q05=None, q95=None):
+    """(low, high) edges of 90% bands, annualised: a Bayesian run's posterior 5% and 95% quantiles
+    ``q05``/``q95`` (per period) where given, else mean -+ 1.645 std.  Scalars or arrays."""
+    if q05 is not None and q95 is not None:
+        lo, hi = _annual(q05, ppy), _annual(q95, ppy)
+        if np.all(np.isfinite(lo)) and np.all(np.isfinite(hi)):
+            return lo, hi
+    m, s = _annual(mean, ppy), _annual(std, ppy)
+    return m - Z90 * s, m + Z90 * s
+
+
+def _kind_edges(frame: pd.DataFrame, kind: str, ppy: int):
+    """Band edges of ``kind`` ("filtered" | "smoothed") for rows of ``PanelFit.estimates``."""
+    return band_edges(frame[f"{kind}_mean"], frame[f"{kind}_std"], ppy, frame.get(f"{kind}_q05"),
+                      frame.get(f"{kind}_q95"))
+
+
 def _band_edges(frame: pd.DataFrame, ppy: int, skip: int = 12) -> np.ndarray:
     """Both bands' edges after the first ``skip`` dates (the first filtered estimates of a diffuse
     start are as wide as a single return and would flatten the rest)."""
     body = frame.iloc[skip:] if len(frame) > 2 * skip else frame
     edges = []
     for kind in ("filtered", "smoothed"):
-        mean = _annual(body[f"{kind}_mean"], ppy)
-        std = _annual(body[f"{kind}_std"], ppy)
-        edges += [mean - Z90 * std, mean + Z90 * std]
+        edges += list(_kind_edges(body, kind, ppy))
     values = np.concatenate(edges) if edges else np.empty(0)
     return values[np.isfinite(values)]
 
@@ -181,13 +196,11 @@ def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str |
         frame = frames[asset]
         dates = pd.to_datetime(frame["date"])
         smooth = _annual(frame["smoothed_mean"], ppy)
-        smooth_sd = _annual(frame["smoothed_std"], ppy)
-        ax.fill_between(dates, smooth - Z90 * smooth_sd, smooth + Z90 * smooth_sd, color=_SMOOTHED_FILL,
+        ax.fill_between(dates, *_kind_edges(frame, "smoothed", ppy), color=_SMOOTHED_FILL,
                         alpha=0.55, lw=0)
         ax.plot(dates, smooth, color=_SMOOTHED, lw=1.6)
         filt = _annual(frame["filtered_mean"], ppy)
-        filt_sd = _annual(frame["filtered_std"], ppy)
-        for edge in (filt - Z90 * filt_sd, filt + Z90 * filt_sd):
+        for edge in _kind_edges(frame, "filtered", ppy):
             ax.plot(dates, edge, color=_FILTERED, lw=0.7, alpha=0.6)
         ax.plot(dates, filt, color=_FILTERED, lw=1.3)
         if reference is not None and asset in reference:
@@ -224,17 +237,18 @@ def cross_section_chart(table: pd.DataFrame, ppy: int, date, kind: str, as_of,
                         title: str | None = None) -> Figure:
     """The premia at one date, highest at the top, with 90% intervals and P(premium > 0) beside.
 
-    ``table``: ``CrossSection.table()`` columns ``asset, mean, std, prob_positive`` (per period).
+    ``table``: ``CrossSection.table()`` columns ``asset, mean, std, prob_positive`` (per period;
+    a Bayesian run's ``q05, q95`` give the intervals).
     """
     if len(table) == 0:
         raise ChartError(f"no asset has a premium estimate at {_day(date)}; pick a later date")
     frame = table.sort_values("mean", ascending=True, kind="stable")
     mean = _annual(frame["mean"], ppy)
-    std = _annual(frame["std"], ppy)
     y = np.arange(len(frame))
     fig, ax = plt.subplots(figsize=(9.0, 0.42 * len(frame) + 1.9), layout="constrained")
     colour = _FILTERED if kind == "filtered" else _SMOOTHED
-    ax.hlines(y, mean - Z90 * std, mean + Z90 * std, color=colour, lw=2.2, alpha=0.45)
+    ax.hlines(y, *band_edges(frame["mean"], frame["std"], ppy, frame.get("q05"), frame.get("q95")),
+              color=colour, lw=2.2, alpha=0.45)
     ax.plot(mean, y, "o", color=colour, ms=6)
     ax.axvline(0.0, color=_ZERO, lw=0.8)
     ax.set_yticks(y, list(frame["asset"]), fontsize=8.5)

@@ -24,19 +24,23 @@ def _version_one_store(location):
         for i, as_of in enumerate(VINTAGES[:3]):
             row = _run_row(run_record(digest, as_of))
             del row["backfill_key"]                                  # not a column at version 1
-            insert_run(conn, row, _check_tables(result_tables(panel, as_of, seed=i)))
+            tables = _check_tables(result_tables(panel, as_of, seed=i))
+            insert_run(conn, row, {kind: frame.drop(columns=list(schema.BAYES_COLUMNS.get(kind, ())))
+                                   for kind, frame in tables.items()})     # version 3's columns
     engine.dispose()
     return panel, digest
 
 
 def _snapshot(store):
-    """Every row of every table, in a stable order, without the columns version 2 added."""
+    """Every row of every table, in a stable order, without the columns and tables versions 2 and 3
+    added."""
     out = {}
+    later = {"backfill_key"} | {c for cols in schema.BAYES_COLUMNS.values() for c in cols}
     with store.engine.connect() as conn:
         for table in schema.metadata.sorted_tables:
-            if table.name == "schema_version":
+            if table.name in ("schema_version", "posterior_draws"):
                 continue
-            cols = [c for c in table.columns if c.name != "backfill_key"]
+            cols = [c for c in table.columns if c.name not in later]
             rows = conn.execute(select(*cols)).all()
             out[table.name] = sorted((tuple(map(repr, r)) for r in rows))
     return out
@@ -50,12 +54,12 @@ def test_upgrade_from_version_one_keeps_every_row(backend):
         assert old.schema_version == 1
         before = _snapshot(old)
         assert len(before["runs"]) == 3 and len(before["estimates"]) > 500
-        with pytest.raises(StoreError, match="schema version 1, this riskprem uses 2.*riskprem store upgrade"):
+        with pytest.raises(StoreError, match="schema version 1, this riskprem uses 3.*riskprem store upgrade"):
             list_runs(old)
         with pytest.raises(StoreError, match="upgrade"):
             write_run(old, run_record(digest, VINTAGES[3]), {})
-        assert upgrade(old) == [2]
-        assert old.schema_version == 2
+        assert upgrade(old) == [2, 3]
+        assert old.schema_version == 3
         assert schema_drift(old) == []
         after = _snapshot(old)
         assert set(before["store_meta"]) < set(after.pop("store_meta"))       # adds upgraded_utc
@@ -65,7 +69,7 @@ def test_upgrade_from_version_one_keeps_every_row(backend):
             assert run["backfill_key"] == backfill_key(digest, run["settings"])
         assert upgrade(old) == []                           # already current: nothing to do
         info = store_info(old)
-        assert info["schema_version"] == 2 and "upgraded_utc" in info["meta"]
+        assert info["schema_version"] == 3 and "upgraded_utc" in info["meta"]
     with open_store(path, read_only=True) as reopened:        # the upgrade is on disk
         assert load_panel(reopened, "larkspur").hash == panel.hash
         key = get_run(reopened, 1)["backfill_key"]

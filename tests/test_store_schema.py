@@ -27,12 +27,16 @@ def test_store_built_by_migrations_matches_the_metadata(store):
 
 
 def test_drift_check_sees_a_store_at_an_older_version(tmp_path):
-    engine = create_engine(f"duckdb:///{tmp_path / 'v1.duckdb'}")
-    assert apply_migrations(engine, target=1) == [1]
-    old = Store(engine, display="v1", path=None, read_only=False, schema_version=1)
+    engine = create_engine(f"duckdb:///{tmp_path / 'v2.duckdb'}")
+    assert apply_migrations(engine, target=2) == [1, 2]
+    old = Store(engine, display="v2", path=None, read_only=False, schema_version=2)
     problems = schema_drift(old)
     engine.dispose()
-    assert len(problems) == 1 and "runs" in problems[0] and "backfill_key" in problems[0]
+    # version 3 added the Bayesian columns and the posterior_draws table
+    named = {name for name in ("estimates", "factor_paths", "parameters", "posterior_draws")
+             if any(name in p for p in problems)}
+    assert len(problems) == 4 and len(named) == 4
+    assert "filtered_q05" in " ".join(problems) and "rhat" in " ".join(problems)
 
 
 def test_every_table_has_run_id_or_hash_and_no_foreign_keys():
@@ -44,11 +48,14 @@ def test_every_table_has_run_id_or_hash_and_no_foreign_keys():
 
 def test_result_tables_use_the_panelfit_column_names():
     # DEVELOPERS.md, "PanelFit" section: the long tables' columns
+    # (plus the Bayesian columns of schema version 3, NULL for ML runs)
+    quantiles = ", filtered_q05, filtered_q95, smoothed_q05, smoothed_q95"
     contract = {
         "estimates": "date, asset, filtered_mean, filtered_std, smoothed_mean, smoothed_std, "
-                     "predictive_mean, predictive_std, std_innovation",
-        "factors": "date, factor, filtered_mean, filtered_std, smoothed_mean, smoothed_std",
-        "parameters": "name, row, col, value, std_error",
+                     "predictive_mean, predictive_std, std_innovation" + quantiles,
+        "factors": "date, factor, filtered_mean, filtered_std, smoothed_mean, smoothed_std" + quantiles,
+        "parameters": "name, row, col, value, std_error, q05, q50, q95, rhat, ess_bulk, ess_tail",
+        "posterior_draws": "draw, name, row, col, value",
         "trace": "iteration, objective, loglik, elapsed_s, step",
         "diagnostics": "asset, statistic, lags, value, pvalue",
     }
@@ -77,11 +84,12 @@ def test_postgresql_reads_json_as_jsonb():
 def test_each_migration_commits_with_its_version_row(tmp_path):
     engine = create_engine(f"duckdb:///{tmp_path / 'steps.duckdb'}")
     assert apply_migrations(engine, target=1) == [1]
-    assert apply_migrations(engine) == [2]
+    assert apply_migrations(engine, target=2) == [2]
+    assert apply_migrations(engine) == [3]
     assert apply_migrations(engine) == []
     engine.dispose()
     with open_store(tmp_path / "steps.duckdb", read_only=True) as opened:
-        assert opened.schema_version == 2
+        assert opened.schema_version == 3
         assert schema_drift(opened) == []
 
 
@@ -118,7 +126,7 @@ def test_installed_copies_are_found_when_not_running_from_a_checkout(tmp_path, m
     resources.resource_dir.cache_clear()
     try:
         assert resources.resource_dir("migrations") == tmp_path / "share" / "riskprem" / "migrations"
-        assert [m.version for m in migrations()] == [1, 2]
+        assert [m.version for m in migrations()] == [1, 2, 3]
         monkeypatch.setattr(resources, "_candidates", lambda kind: [tmp_path / "nothing" / kind])
         resources.resource_dir.cache_clear()
         with pytest.raises(StoreError, match="cannot find riskprem's queries/ SQL files"):

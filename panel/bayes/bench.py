@@ -1,7 +1,7 @@
 """Benchmark of the Gibbs sampler against the ML fit of the same panel, in the same process:
 ``python -m panel.bayes.bench [--quick] [--threads N]``.
 
-Panel: ``panel.bench.simulate`` (invented, balanced, monthly; N=100, T=600 by default, with one
+Panel: ``panel.bench.fit.simulate`` (invented, balanced, monthly; N=100, T=600 by default, with one
 premium factor and one return factor).  Timed: the ML fit ``panel.model.fit.fit`` (default
 settings, one factor, factor H) and ``panel.bayes.sample`` with 4 chains of 250 warm-up and 500
 kept sweeps.  Printed: seconds per E-step and per sweep, the cost of 2,000 sweeps against the ML
@@ -24,14 +24,18 @@ def main(argv=None) -> int:
     parser.add_argument("--quick", action="store_true", help="small panel, short chains")
     parser.add_argument("--threads", type=int, default=1, help="BLAS threads (default 1)")
     args = parser.parse_args(argv)
+    # ``python -m panel.bayes.bench`` has loaded numpy (the package's __init__) before this line, so
+    # the limit goes through riskprem's own threadpoolctl limit around fit and sample
+    # (panel.threads); the variables still reach worker processes.
+    os.environ["RISKPREM_BLAS_THREADS"] = str(args.threads)
     for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-        os.environ[var] = str(args.threads)       # before numpy loads BLAS (lazy imports below)
+        os.environ[var] = str(args.threads)
     import time
 
     import numpy as np
 
     from panel.bayes import sample
-    from panel.bench import simulate
+    from panel.bench.fit import simulate
     from panel.model.fit import fit
     from panel.model.spec import ModelSpec
 
@@ -53,7 +57,7 @@ def main(argv=None) -> int:
     per_estep = t_ml / ml.n_iter
     p = res.parameters
     ess = np.minimum(p["ess_bulk"], p["ess_tail"])
-    print(f"panel: balanced N={cfg['N']} T={cfg['T']} (invented, panel.bench.simulate), "
+    print(f"panel: balanced N={cfg['N']} T={cfg['T']} (invented, panel.bench.fit.simulate), "
           f"k=1, factor H r=1, BLAS threads {args.threads}")
     print(f"ML fit: {t_ml:.2f} s, {ml.n_iter} E-steps ({per_estep * 1e3:.2f} ms each), "
           f"status {ml.status}")

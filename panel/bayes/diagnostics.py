@@ -129,6 +129,16 @@ def parameter_table(draws: dict, assets, k: int, r: int, structure: str, ppy: in
     return table.drop(columns="kind")
 
 
+def mixing_numbers(table: pd.DataFrame) -> tuple[float, float]:
+    """(max split R-hat, min of bulk and tail ESS) over the monitored quantities of a parameter
+    table (this module's or a Bayesian PanelFit's); NaN when nothing was monitored."""
+    ok = table["ess_bulk"].notna()
+    if not ok.any():
+        return float("nan"), float("nan")
+    t = table[ok]
+    return float(t["rhat"].max()), float(np.minimum(t["ess_bulk"], t["ess_tail"]).min())
+
+
 def mixing_status(table: pd.DataFrame) -> tuple[str, str]:
     """("mixed" | "not mixed", one-line message naming the worst quantities)."""
     ok = table["ess_bulk"].notna()

@@ -13,7 +13,11 @@ import pandas as pd
 
 from panel.bayes import summary as sm
 from panel.kalman.paths import Plan
+from panel.model import inference
 from panel.model.params import Params
+
+#: Parameter rows stored per summary draw: enough to rebuild each draw's Params.
+DRAW_NAMES = ("loading", "idio_premium_var", "return_loading", "return_idio_var", "return_cov")
 
 
 def draw_params(draws: dict, structure: str, chain: int, draw: int) -> Params:
@@ -88,6 +92,23 @@ class BayesResult:
 
     def summary_params(self) -> list[Params]:
         return [self.params_at(int(c), int(j)) for c, j in self.summary_draws]
+
+    def draw_rows(self) -> pd.DataFrame:
+        """The summary draws' parameters as long rows ``draw, name, row, col, value`` (per period;
+        :data:`DRAW_NAMES` only, ``return_cov`` only for a full H): what the store keeps so that a
+        stored run's cross-sections mix over the same draws (``panel.bayes.estimate.draws_from_rows``
+        reads them back)."""
+        rows = inference.parameter_rows(list(self.assets), self.k, self.r, self.structure)
+        keep = np.array([n in DRAW_NAMES and (n != "return_cov" or self.structure == "full")
+                         for n, _, _ in rows])
+        labels = pd.DataFrame(rows, columns=["name", "row", "col"])[keep]
+        frames = []
+        for j, p in enumerate(self.summary_params()):
+            frame = labels.copy()
+            frame.insert(0, "draw", j)
+            frame["value"] = inference.parameter_vector(p, self.structure)[keep]
+            frames.append(frame)
+        return pd.concat(frames, ignore_index=True)
 
     def prob_positive(self, kind: str = "filtered") -> pd.DataFrame:
         """``P(mu_t > 0)`` (dates x assets), ``kind`` "filtered" or "smoothed"."""

@@ -23,6 +23,7 @@ from panel.data import Panel
 from panel.kalman.paths import Plan
 from panel.model.params import Params
 from panel.model.spec import ModelSpec, SpecError
+from panel.threads import blas_limited
 
 
 def _data(data, ppy):
@@ -62,6 +63,7 @@ def _check_counts(draws, chains, warmup, n_summary):
             raise SpecError(f"{name} must be an integer >= {low}, got {value!r}")
 
 
+@blas_limited
 def sample(data, *, ppy: int | None = None, k: int | None = None, structure: str | None = None,
            r: int = 1, priors: Priors | None = None, draws: int = 1000, chains: int = 4,
            seed: int = 0, warmup: int | None = None, fixed_q=None, fixed_psi=None,

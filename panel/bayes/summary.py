@@ -122,9 +122,17 @@ def premium_summary(plan: Plan, draws: list[Params], k: int) -> dict:
 def pairwise_at(plan: Plan, draws: list[Params], t: int, kind: str):
     """(P(mu > 0) (N,), P(mu_i > mu_j) (N, N)) at date index ``t`` from the mixture of the
     draws' joint ``kind`` ("filtered" | "smoothed") distributions; NaN for inactive assets."""
-    pos, greater = [], []
+    out = cross_section_mixture(plan, draws, t, kind)
+    return out[2], out[3]
+
+
+def cross_section_mixture(plan: Plan, draws: list[Params], t: int, kind: str):
+    """(mean (N,), cov (N, N), P(mu > 0) (N,), P(mu_i > mu_j) (N, N), 5% and 95% quantiles (N,),
+    (N,)) at date index ``t``: the mixture of the draws' joint ``kind`` distributions (moments by
+    the law of total variance); NaN for inactive assets."""
+    pos, greater, means, covs = [], [], [], []
     for p in draws:
-        rep = plan.report(p.Sigma, p.H, cov_at=(t,))
+        rep = plan.report(p.Sigma, p.H, cov_at=(t,), only_cov=True)
         mean = getattr(rep, f"{kind}_mean")[t]
         cov = rep.covariances[t][kind]
         d = np.diag(cov)
@@ -134,6 +142,16 @@ def pairwise_at(plan: Plan, draws: list[Params], t: int, kind: str):
         with np.errstate(divide="ignore", invalid="ignore"):
             z = np.where(var > 0, diff / np.sqrt(var), np.sign(diff) * np.inf)
         greater.append(special.ndtr(z))
+        means.append(mean)
+        covs.append(cov)
+    M = np.array(means)
+    centred = M - M.mean(axis=0)
+    cov = np.mean(covs, axis=0) + centred.T @ centred / len(draws)
     G = np.mean(greater, axis=0)
     np.fill_diagonal(G, np.nan)
-    return np.mean(pos, axis=0), G
+    sds = np.sqrt(np.maximum(np.array([np.diag(c) for c in covs]), 0.0))
+    live = ~np.isnan(M[0])
+    q = np.full((2, M.shape[1]), np.nan)
+    for row, p in enumerate(QUANTILES):
+        q[row, live] = mixture_quantile(M[:, live], sds[:, live], p)
+    return M.mean(axis=0), cov, np.mean(pos, axis=0), G, q[0], q[1]

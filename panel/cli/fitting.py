@@ -7,9 +7,10 @@ from typing import Annotated
 
 import typer
 
+from panel import units
 from panel.cli import output
-from panel.cli.common import (JsonFlag, RunArg, State, fail, info, parse_date, progress, state,
-                              store_exists, store_for, user_errors)
+from panel.cli.common import (JsonFlag, RunArg, State, existing_folder, fail, info, parse_date,
+                              progress, state, store_exists, store_for, user_errors)
 from panel.cli.model_options import ModelOptions, with_model_options
 from panel.cli.data import (AssetColOpt, Compounding, DateColOpt, DateFormatOpt, DelimiterOpt, ExtremeOpt,
                             FrequencyOpt, LayoutOpt, MinObsOpt, RefuseShortOpt, ReturnsOpt, RiskFreeOpt, TotalOpt,
@@ -50,12 +51,14 @@ def latest_rows(result, ppy: int) -> tuple[list, dict]:
         r = now.loc[asset]
         earlier = then.loc[asset] if then is not None and asset in then.index else None
         rows.append((asset, output.num(output.premium_pct(r.filtered_mean, ppy), 1),
-                     output.band(r.filtered_mean, r.filtered_std, ppy), output.pct(prob.get(asset)),
+                     output.row_band(r, "filtered", ppy), output.pct(prob.get(asset)),
                      "-" if earlier is None else output.num(output.premium_pct(earlier.filtered_mean, ppy), 1),
                      "-" if earlier is None else output.num(output.premium_pct(earlier.smoothed_mean, ppy), 1)))
+        quantiles = {c: r[c] for c in ("filtered_q05", "filtered_q95", "smoothed_q05", "smoothed_q95")
+                     if c in r.index}
         records.append({"asset": asset, "date": last, "filtered_mean": r.filtered_mean,
                         "filtered_std": r.filtered_std, "smoothed_mean": r.smoothed_mean,
-                        "smoothed_std": r.smoothed_std, "prob_positive": prob.get(asset),
+                        "smoothed_std": r.smoothed_std, **quantiles, "prob_positive": prob.get(asset),
                         "year_earlier_date": year_back,
                         "year_earlier_filtered_mean": None if earlier is None else earlier.filtered_mean,
                         "year_earlier_smoothed_mean": None if earlier is None else earlier.smoothed_mean})
@@ -70,8 +73,8 @@ def print_latest(result, ppy: int, rows: list, year_back) -> None:
         f"Premia at {last}, annualised % (x{ppy}); at the as-of date filtered = smoothed. "
         f"A year earlier: filtered (real-time) vs smoothed (revised)",
         headers, rows,
-        caption="Bands are 90% (mean +- 1.645 std). The last two columns show how a year of data "
-                "revised the estimate made then."))
+        caption=output.BAND_NOTE + " The last two columns show how a year of data revised the "
+                "estimate made then."))
 
 
 def fit(
@@ -101,13 +104,18 @@ def fit(
     model: ModelOptions = ModelOptions(),
     label: Annotated[str | None, typer.Option("--label", help="A note stored with the run.",
                                               show_default=False)] = None,
+    save_draws: Annotated[Path | None, typer.Option(
+        "--save-draws", metavar="FILE.nc", help="With --bayes: also write every parameter draw of "
+        "every chain to this NetCDF file (ArviZ InferenceData; the store keeps summaries only).",
+        show_default=False)] = None,
     as_json: JsonFlag = False,
 ) -> None:
     """Estimate the premia of a dataset and store the run (a vintage at its as-of date).
 
     Prints the run id, convergence status, log-likelihood, AIC/BIC and the latest premia
     (annualised %, with 90% bands).  Volatility options are annualised percent.  The store is
-    written only after a successful fit, in one transaction.
+    written only after a successful fit, in one transaction.  With --bayes the posterior is
+    sampled: the status says whether the chains mixed and the bands are posterior quantiles.
     """
     import pandas as pd
 
@@ -126,6 +134,14 @@ def fit(
                                  param_hint="--name")
     cutoff = parse_date(as_of, "--as-of")
     spec = model.spec()
+    if save_draws is not None:
+        if not spec.bayes:
+            raise typer.BadParameter("--save-draws goes with --bayes (an ML fit has no draws)",
+                                     param_hint="--save-draws")
+        if save_draws.suffix.lower() != ".nc":
+            raise typer.BadParameter(f"{save_draws.name} does not end in .nc; the draws are written as "
+                                     "NetCDF (e.g. draws.nc)", param_hint="--save-draws")
+        existing_folder(save_draws, "--save-draws")
     if file is not None:
         panel = read_file(file, file_options(layout, units, returns, total_returns, risk_free, date_col, date_format,
                                              delimiter, frequency, asset_col, value_col, min_obs, refuse_short,
@@ -153,9 +169,14 @@ def fit(
                  f"(as of {vintage.dates[-1].date()})")
         started = pd.Timestamp.now(tz="UTC").tz_localize(None).to_pydatetime()
         label_text = f"estimating ({len(vintage.assets)} assets x {len(vintage.dates)} dates)"
-        with progress(st, label_text, total=spec.max_iter) as bar:
+        total = spec.max_iter
+        if spec.bayes:
+            label_text = f"sampling ({len(vintage.assets)} assets x {len(vintage.dates)} dates), sweeps"
+            total = spec.chains * (spec.draws + (spec.draws if spec.warmup is None else spec.warmup))
+        with progress(st, label_text, total=total) as bar:
             result = estimate(vintage, spec, progress=lambda n, objective: bar.update(
-                n, description=f"{label_text}, objective {objective:,.2f}"))
+                n, description=label_text if objective is None else
+                f"{label_text}, objective {objective:,.2f}"))
     from panel.store import write_dataset, write_run
 
     with store_for(st, write=True) as store, user_errors():
@@ -163,6 +184,8 @@ def fit(
             write_dataset(store, panel, dataset)
         run, tables = record_fit(result, digest, kind="fit", label=label, source=source, started_utc=started)
         run_id = write_run(store, run, tables)
+    if save_draws is not None:
+        result.posterior.to_inference_data().to_netcdf(str(save_draws))
     ppy = result.periods_per_year
     rows, latest = latest_rows(result, ppy)
     summary = {"run_id": run_id, "dataset": dataset, "dataset_hash": digest, "as_of": result.dates[-1],
@@ -171,18 +194,69 @@ def fit(
                "iterations": result.n_iter, "seconds": result.elapsed, "n_assets": len(result.assets),
                "n_dates": len(result.dates), "periods_per_year": ppy, "units": output.MACHINE_UNITS,
                "settings": run["settings"], "latest": latest, "caution": output.CAUTION}
+    if result.posterior is not None:
+        from panel.bayes.diagnostics import mixing_numbers
+
+        max_rhat, min_ess = mixing_numbers(result.parameters)
+        summary["mixing"] = {"status": result.status, "max_split_rhat": max_rhat, "min_ess": min_ess,
+                             "chains": spec.chains, "draws": spec.draws,
+                             "sampler_seed": run["settings"].get("sampler_seed"),
+                             "draws_file": None if save_draws is None else str(save_draws)}
     if as_json:
         output.emit_json(summary)
         return
     output.line(f"run {run_id} stored: dataset {dataset} ({output.short_hash(digest)}), as of "
                 f"{output.day(result.dates[-1])}, {len(result.assets)} assets x {len(result.dates)} dates",
                 style="bold")
-    status_style = "green" if result.converged and result.status == "converged" else "yellow"
-    output.line(f"status: {result.status} - {result.message}", style=status_style)
-    output.line(f"log-likelihood {result.loglik:,.2f}   AIC {result.aic:,.2f}   BIC {result.bic:,.2f}   "
-                f"parameters {result.n_params}   iterations {result.n_iter}   {result.elapsed:.1f} s")
+    if result.posterior is not None:
+        print_mixing(result.status, result.parameters, spec.chains)
+        output.line(f"log-likelihood at the posterior-mean parameters {result.loglik:,.2f}   "
+                    f"parameters {result.n_params}   sweeps {result.n_iter}   {result.elapsed:.1f} s"
+                    + (f"   draws written to {save_draws}" if save_draws is not None else ""))
+    else:
+        status_style = "green" if result.converged and result.status == "converged" else "yellow"
+        output.line(f"status: {result.status} - {result.message}", style=status_style)
+        output.line(f"log-likelihood {result.loglik:,.2f}   AIC {result.aic:,.2f}   BIC {result.bic:,.2f}   "
+                    f"parameters {result.n_params}   iterations {result.n_iter}   {result.elapsed:.1f} s")
     print_latest(result, ppy, rows, latest["year_earlier"])
     output.caution()
+
+
+def print_mixing(status: str, parameters, chains: int) -> None:
+    """The mixing status of a Bayesian run in plain words (max R-hat, min ESS)."""
+    from panel.bayes.diagnostics import mixing_numbers
+
+    text, style = output.mixing(status, *mixing_numbers(parameters), chains)
+    output.line(f"status: {status} - {text}", style=style)
+
+
+#: Posterior rows ``show`` prints for a Bayesian run, with their display conversion.
+_POSTERIOR_ROWS = {"loading": ("premium loading", "premium_loading"),
+                   "idio_premium_var": ("own premium vol", "premium_var"),
+                   "premium_cov": ("premium vol", "premium_var"),
+                   "return_cov": ("return-shock vol", "return_var"),
+                   "return_idio_var": ("own return-shock vol", "return_var")}
+
+
+def print_posterior(parameters, status: str, chains: int, ppy: int) -> None:
+    """A Bayesian run's parameter posterior (% a year) and its mixing status."""
+    from panel.bayes.diagnostics import annualise
+
+    print_mixing(status, parameters, chains)
+    post = parameters[parameters["name"].isin(list(_POSTERIOR_ROWS)) & parameters["rhat"].notna()]
+    post = post[(post["name"] != "return_cov") | (post["row"] == post["col"])]
+    rows = []
+    for r in post.itertuples(index=False):
+        label, kind = _POSTERIOR_ROWS[r.name]
+        lo, mid, hi = (100 * float(annualise(getattr(r, c), kind, ppy))
+                         for c in ("q05", "q50", "q95"))
+        rows.append((label + (f" {r.col}" if r.name == "loading" else ""), r.row, output.num(mid, 2),
+                     f"[{output.num(lo, 2)}, {output.num(hi, 2)}]", output.num(r.rhat, 3),
+                     output.num(min(r.ess_bulk, r.ess_tail), 0)))
+    output.show(output.table(
+        f"Parameter posterior, % a year (median and 90% interval; premium vol = sqrt(q x {ppy}^3))",
+        ["parameter", "asset", "median", "90% interval", "split R-hat", "ESS"], rows, right_from=2,
+        caption=units.CONVENTION_NOTE + " The table above shows the posterior-mean parameters."))
 
 
 def _env_rows(reproduction, verbose: bool):

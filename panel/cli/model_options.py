@@ -83,7 +83,37 @@ OPTIONS = (
     ("std_errors", Annotated[StdErrors | None, typer.Option(
         "--std-errors", help="Parameter standard errors (auto: when the free parameters number at most "
                              "150). Default auto.", show_default=False)], None),
+    ("bayes", Annotated[bool, typer.Option(
+        "--bayes", help="Bayesian estimation: sample the posterior by Gibbs, so bands carry parameter "
+                        "uncertainty (slower; see --draws, --chains, --seed, --prior).")], False),
+    ("draws", Annotated[int | None, typer.Option(
+        "--draws", min=1, metavar="N", help="With --bayes: kept draws per chain (default 1000).",
+        show_default=False)], None),
+    ("chains", Annotated[int | None, typer.Option(
+        "--chains", min=1, metavar="C", help="With --bayes: chains, for the mixing check (default 4).",
+        show_default=False)], None),
+    ("warmup", Annotated[int | None, typer.Option(
+        "--warmup", min=0, metavar="N", help="With --bayes: discarded sweeps per chain (default: as "
+                                             "many as --draws).", show_default=False)], None),
+    ("seed", Annotated[int | None, typer.Option(
+        "--seed", min=0, metavar="S", help="With --bayes: root seed (default 0); each cut-off draws "
+                                           "its own stream from it, so runs reproduce exactly.",
+        show_default=False)], None),
+    ("summary_draws", Annotated[int | None, typer.Option(
+        "--summary-draws", min=1, metavar="M", help="With --bayes: parameter draws the premium "
+        "summaries (bands, probabilities) mix over, and the run stores (default 100).",
+        show_default=False)], None),
+    ("prior", Annotated[list[str] | None, typer.Option(
+        "--prior", metavar="NAME=VALUE",
+        help="With --bayes: a prior, volatilities in % a year: premium_vol=2 (scale of each OWN "
+             f"premium volatility; {_PREMIUM_VOL}), loading_vol=2, return_vol=15, "
+             "return_loading_vol=15, premium_vol_family=invgamma, premium_vol_shape=2, "
+             "return_vol_shape=2. Repeatable.", show_default=False)], None),
 )
+#: The options that only Bayesian estimation takes (a profile may set them with bayes = true).
+BAYES_OPTIONS = ("draws", "chains", "warmup", "seed", "summary_draws", "prior")
+#: Mergeable NAME=VALUE options: a profile's entries and the typed ones merge by name.
+ASSIGNMENTS = {"fix": "--fix", "prior": "--prior"}
 DEFAULTS = {name: default for name, _, default in OPTIONS}
 #: The profile options the decorator adds before the model options.
 PROFILE_OPTIONS = (
@@ -113,6 +143,13 @@ class ModelOptions:
     max_iter: int | None = None
     time_budget: float | None = None
     std_errors: StdErrors | None = None
+    bayes: bool = False
+    draws: int | None = None
+    chains: int | None = None
+    warmup: int | None = None
+    seed: int | None = None
+    summary_draws: int | None = None
+    prior: tuple[str, ...] = ()
     #: The profile's name and its values ((option, value) pairs), if one was asked for.
     profile: str | None = None
     profile_values: tuple = ()
@@ -121,14 +158,15 @@ class ModelOptions:
 
     def effective(self) -> dict:
         """Option name -> value after merging: typed options win over the profile's values, which
-        win over the defaults; ``fix`` entries merge by name."""
+        win over the defaults; ``fix`` and ``prior`` entries merge by name."""
         values = {name: getattr(self, name) for name in DEFAULTS}
         typed = set(DEFAULTS) if self.explicit is None else set(self.explicit)
         for name, value in self.profile_values:
-            if name == "fix":
-                mine = parse_assignments(self.fix, "--fix") if "fix" in typed else {}
-                merged = {**parse_assignments(value, "--fix"), **mine}
-                values["fix"] = tuple(f"{key}={item}" for key, item in merged.items())
+            if name in ASSIGNMENTS:
+                flag = ASSIGNMENTS[name]
+                mine = parse_assignments(getattr(self, name), flag) if name in typed else {}
+                merged = {**parse_assignments(value, flag), **mine}
+                values[name] = tuple(f"{key}={item}" for key, item in merged.items())
             elif name not in typed:
                 values[name] = value
         return values
@@ -137,7 +175,7 @@ class ModelOptions:
         """Whether any option differs from its default (the user described a model)."""
         values = self.effective()
         return any(values[name] not in (default, None, [], ()) for name, default in DEFAULTS.items()
-                   if name != "fix") or bool(values["fix"])
+                   if name not in ASSIGNMENTS) or any(bool(values[name]) for name in ASSIGNMENTS)
 
     def spec(self):
         """The :class:`~panel.model.spec.ModelSpec` these options describe, profile merged in
@@ -168,12 +206,37 @@ class ModelOptions:
             extra["std_errors"] = v["std_errors"].value
         if v["time_budget"] is not None:
             extra["time_budget"] = v["time_budget"]   # a non-finite one is refused in one line later
+        if v["bayes"]:
+            extra["estimation"] = "bayes"
+        for name in ("draws", "chains", "warmup", "seed", "summary_draws"):
+            if v[name] is not None:
+                extra[name] = v[name]
+        if v["prior"]:
+            extra["priors"] = _priors(v["prior"])
         cap = v["max_premium_vol"]
         return ModelSpec(premium_factors=v["premium_factors"],
                          return_shocks=None if v["return_shocks"] is None else v["return_shocks"].value,
                          return_factors=v["return_factors"], vol_scale=scale, fixed=fixed,
                          max_premium_vol=None if cap is None else cap / 100.0,
                          premium_prior=prior, initial_premium=start, starts=v["starts"], **extra)
+
+
+def _priors(items) -> dict:
+    """``--prior NAME=VALUE`` items -> the dict of :class:`panel.bayes.Priors` (volatilities from
+    percent to decimals), checked (a bad name or value exits 2)."""
+    from panel.bayes.priors import PriorError, Priors
+
+    out = {}
+    for name, value in parse_assignments(items, "--prior").items():
+        if name == "premium_vol_family":
+            out[name] = value
+        else:
+            number = parse_number(value, "--prior", name)
+            out[name] = number / 100.0 if name.endswith("_vol") else number
+    try:
+        return Priors.from_dict(out).to_dict()
+    except (PriorError, TypeError) as error:
+        raise typer.BadParameter(str(error).splitlines()[0], param_hint="--prior") from None
 
 
 def _typed(ctx, name: str) -> bool:
@@ -200,7 +263,8 @@ def check_option(name: str, value) -> None:
     from panel.model.spec import SpecError
 
     try:
-        spec = ModelOptions(**{name: value}).spec()
+        bayes = {"bayes": True} if name in BAYES_OPTIONS else {}   # checked as they would be used
+        spec = ModelOptions(**{name: value, **bayes}).spec()
         assets = tuple(f"a{i}" for i in range(12))
         if all(":" not in key for key, _ in spec.fixed):       # per-asset fixes need the data
             spec.resolve(len(assets), 12, 240, assets)
@@ -215,7 +279,8 @@ def _options_from(kwargs: dict) -> ModelOptions:
     from panel.cli.profiles import ProfileError, load_profile
 
     values = {name: kwargs.pop(name, DEFAULTS[name]) for name in DEFAULTS}
-    values["fix"] = tuple(values["fix"] or ())
+    for name in ASSIGNMENTS:
+        values[name] = tuple(values[name] or ())
     profile, config = kwargs.pop("profile", None), kwargs.pop("config", None)
     ctx = kwargs.get("ctx")
     explicit = frozenset(name for name in DEFAULTS if _typed(ctx, name)) if ctx is not None else None

@@ -312,12 +312,40 @@ def sci(value) -> str:
     return "0" if x == 0 else f"{x:.2e}"
 
 
-def band(mean, std, ppy: int, digits: int = 1) -> str:
-    """``[lo, hi]`` 90% band of a per-period premium, annualised percent."""
+def band(mean, std, ppy: int, digits: int = 1, quantiles=None) -> str:
+    """``[lo, hi]`` 90% band of a per-period premium, annualised percent: mean +- 1.645 std, or a
+    Bayesian run's posterior 5% and 95% quantiles ``quantiles`` (per period) when given."""
+    if quantiles is not None and all(v is not None and math.isfinite(float(v)) for v in quantiles):
+        lo, hi = (float(premium_pct(v, ppy)) for v in quantiles)
+        return f"[{lo:.{digits}f}, {hi:.{digits}f}]"
     m, s = float(premium_pct(mean, ppy)), float(premium_pct(std, ppy))
     if not (math.isfinite(m) and math.isfinite(s)):
         return "-"
     return f"[{m - Z90 * s:.{digits}f}, {m + Z90 * s:.{digits}f}]"
+
+
+def row_band(row, kind: str, ppy: int, digits: int = 1) -> str:
+    """The 90% band of one estimates row (a Series or namedtuple) for ``kind`` filtered/smoothed:
+    the posterior quantiles of a Bayesian run, else mean +- 1.645 std."""
+    get = row.get if hasattr(row, "get") else (lambda key, default=None: getattr(row, key, default))
+    q = (get(f"{kind}_q05", None), get(f"{kind}_q95", None))
+    return band(get(f"{kind}_mean"), get(f"{kind}_std"), ppy, digits,
+                quantiles=None if q[0] is None else q)
+
+
+#: Caption of tables whose bands may come from a posterior.
+BAND_NOTE = ("Bands are 90%: mean +- 1.645 std (ML), or the posterior 5% and 95% quantiles of a "
+             "Bayesian run (parameter uncertainty included).")
+
+
+def mixing(status: str, max_rhat: float, min_ess: float, chains: int) -> tuple[str, str]:
+    """(text, style) saying in plain words whether a Bayesian run's chains mixed."""
+    numbers = f"largest split R-hat {max_rhat:.3f}, smallest effective sample size {min_ess:,.0f}"
+    if status == "mixed":
+        return (f"the {chains} chains mixed: {numbers} (rule: R-hat < 1.01 and ESS > 400, common "
+                "practice)", "green")
+    return (f"the {chains} chains have NOT mixed: {numbers} (rule: R-hat < 1.01 and ESS > 400, common "
+            "practice); the bands may be wrong: run more --draws or a longer --warmup", "yellow")
 
 
 def pct(prob, digits: int = 0) -> str:

@@ -49,6 +49,8 @@ def _value(key: str, value, where: str, kind):
     """``value`` of ``key`` checked for its type and converted to what the option takes."""
     from enum import Enum
 
+    if kind is bool and not isinstance(value, bool):
+        raise ProfileError(f"{where}: {value!r} is not true or false")
     if kind is int and (isinstance(value, bool) or not isinstance(value, int)):
         raise ProfileError(f"{where}: {value!r} is not a whole number")
     if kind is float and (isinstance(value, bool) or not isinstance(value, (int, float))):

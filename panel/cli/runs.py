@@ -163,10 +163,14 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
     output.show(output.table(f"Parameters, % a year (premium vol = sqrt(q x {ppy}^3), loadings x {ppy}^1.5; "
                              f"return-shock vol = sqrt(h x {ppy}))", headers, rows,
                              caption=units.CONVENTION_NOTE))
+    if inputs.spec.bayes:
+        from panel.cli.fitting import print_posterior
+
+        print_posterior(tables["parameters"], run["status"], inputs.spec.chains, ppy)
     est = tables["estimates"]
     last = est[pd.to_datetime(est["date"]) == pd.Timestamp(run["as_of"])].set_index("asset")
     rows = [(a, output.num(output.premium_pct(last.loc[a, "filtered_mean"], ppy), 1),
-             output.band(last.loc[a, "filtered_mean"], last.loc[a, "filtered_std"], ppy))
+             output.row_band(last.loc[a], "filtered", ppy))
             for a in assets if a in last.index]
     output.show(output.table(f"Premia at {output.day(run['as_of'])}, annualised % (x{ppy}); filtered = "
                              "smoothed at the as-of date", ["asset", "premium", "90% band"], rows))
@@ -200,7 +204,7 @@ def estimates(
     The table shows the last 12 dates unless --last says otherwise; --csv and --json give every date
     unless --last is given, and say on stderr when rows were left out.
     """
-    from panel.store import dataset_layout, get_run, run_estimates
+    from panel.store import dataset_layout, get_run, is_bayes, run_estimates
 
     st = state(ctx)
     machine = as_json or as_csv
@@ -209,6 +213,8 @@ def estimates(
     columns = ["date", "asset"] + [f"{k}_{s}" for k in kinds for s in ("mean", "std")]
     with store_for(st) as store, user_errors():
         run = get_run(store, run_id)
+        if is_bayes(run):                   # the posterior's 5% and 95% quantiles
+            columns += [f"{k}_{q}" for k in kinds for q in ("q05", "q95")]
         layout = dataset_layout(store, run["dataset_hash"])
         unknown = [a for a in asset or () if a not in layout["assets"]]
         if unknown:
@@ -234,17 +240,18 @@ def estimates(
     for k in kinds:
         headers += [f"{k}, % a year", "90% band"]
     rows = []
-    mean = {k: est[f"{k}_mean"].to_numpy(float) for k in kinds}
-    std = {k: est[f"{k}_std"].to_numpy(float) for k in kinds}
-    for i, (d, a) in enumerate(zip(est["date"].tolist(), est["asset"].tolist())):
-        cells = [output.day(d), a]
+    for r in est.itertuples(index=False):
+        cells = [output.day(r.date), r.asset]
         for k in kinds:
-            cells += [output.num(output.premium_pct(mean[k][i], ppy), 2), output.band(mean[k][i], std[k][i], ppy)]
+            cells += [output.num(output.premium_pct(getattr(r, f"{k}_mean"), ppy), 2),
+                      output.row_band(r, k, ppy)]
         rows.append(cells)
     basis = " and ".join(f"{k} ({'real-time' if k == 'filtered' else 'revised with all data'})" for k in kinds)
     output.show(output.table(f"Run {run_id} premia, annualised % (x{ppy}), {basis}; as of "
                              f"{output.day(run['as_of'])}", headers, rows, right_from=2,
-                             caption=None if cut is None else f"{cut}; --last N for more, 0 for all",
+                             caption=" ".join(t for t in (
+                                 None if cut is None else f"{cut}; --last N for more, 0 for all.",
+                                 output.BAND_NOTE if is_bayes(run) else None) if t) or None,
                              drop=[5, 3]))
     output.caution()
 
@@ -287,14 +294,20 @@ def cross_section(
     if as_csv:
         output.emit_csv(matrix.reset_index(names="asset") if pairs else ranked)
         return
-    rows = [(i + 1, r.asset, output.num(output.premium_pct(r.mean, ppy), 2), output.band(r.mean, r.std, ppy),
+    rows = [(i + 1, r.asset, output.num(output.premium_pct(r.mean, ppy), 2),
+             output.band(r.mean, r.std, ppy, quantiles=(getattr(r, "q05", None), getattr(r, "q95", None))
+                         if cs.mixture is not None else None),
              output.num(output.premium_pct(r.std, ppy), 2), output.pct(r.prob_positive))
             for i, r in enumerate(ranked.itertuples(index=False))]
     output.show(output.table(f"Cross-section at {output.day(cs.date)}: {kind.value} premia "
                              f"({'real-time' if kind == Kind.filtered else 'revised'}), annualised % (x{ppy}); "
                              f"run {run_id}, as of {output.day(as_of)}",
                              ["rank", "asset", "premium", "90% band", "std", "P(premium > 0)"], rows,
-                             right_from=2))
+                             right_from=2,
+                             caption=None if cs.mixture is None else
+                             "Bayesian run: premium = posterior mean, band = posterior 5% and 95% "
+                             "quantiles, probabilities from the posterior draws (parameter "
+                             "uncertainty included)."))
     if pairs:
         labels = list(matrix.index)
         rows = [(a, *("" if a == b else output.pct(matrix.loc[a, b]) for b in labels)) for a in labels]
@@ -502,7 +515,7 @@ def plot(
     import pandas as pd
 
     from panel import plots
-    from panel.vintages.reproduce import evaluated_run, run_inputs, vintage_history
+    from panel.vintages.reproduce import run_inputs, stored_cross_section, vintage_history
     from panel.store import run_tables
 
     st = state(ctx)
@@ -534,8 +547,7 @@ def plot(
                                           title=plots.heading("Premium paths", dataset, label),
                                           shared_scale=same_scale)
             elif chart == Chart.cross_section:
-                result = evaluated_run(store, run_id)
-                cs = result.cross_section(when, kind.value)
+                cs, _ = stored_cross_section(store, run_id, when, kind.value)   # Bayes: over its draws
                 fig = plots.cross_section_chart(cs.table(), ppy, cs.date, kind.value, as_of,
                                                 title=plots.heading("Cross-section", dataset, label))
             else:

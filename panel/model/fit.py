@@ -43,7 +43,10 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     data : Panel or DataFrame (dates x assets, decimal excess returns per period, NaN missing).
     spec : ModelSpec (default settings when None).
     start : Params to start from (a warm start); None uses the moment-based rule.
-    progress : optional ``callable(n_estep, objective)``, called after every accepted EM step.
+    progress : optional ``callable(n_estep, objective)``, called after every accepted EM step (a
+        Bayesian spec: ``callable(n_sweeps, None)`` after every sweep of every chain).
+
+    ``spec.estimation == "bayes"`` samples the posterior instead (:mod:`panel.bayes.estimate`).
     """
     t0 = time.perf_counter()
     panel = as_panel(data)
@@ -52,6 +55,10 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     rs = prob.rs
     n_free = count_free(rs, prob.Y.shape[1])
     check_estimable(prob.Y, prob.panel.assets, rs)
+    if spec.bayes:
+        from panel.bayes.estimate import fit_bayes
+
+        return fit_bayes(prob, None if start is None else _check_start(start, prob), progress)
     p0 = starting_values(prob.Y, rs) if start is None else _check_start(start, prob)
     if rs.max_sigma_diag is not None:      # start inside the cap: EM never accepts a step down
         lam, q = ms.cap_premium(p0.Lambda, p0.q, rs.max_sigma_diag, prob.packer.free_q)

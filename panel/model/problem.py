@@ -100,3 +100,17 @@ def covariance_at(panel: Panel, spec: ModelSpec, params: Params, t: int, kind: s
     mean = out.filtered_mean[t] if kind == "filtered" else out.smoothed_mean[t]
     active = ~np.isnan(mean)
     return mean[active], out.covariances[t][kind][np.ix_(active, active)], active
+
+
+@blas_limited
+def mixture_at(panel: Panel, spec: ModelSpec, draws: list, t: int, kind: str):
+    """(mean, cov, active mask, (P(mu > 0), P(mu_i > mu_j), q05, q95)) of the premia at date index ``t``:
+    the equal-weight mixture of their joint ``kind`` distributions at the parameter ``draws``
+    (a Bayesian run's summary draws; :func:`panel.bayes.summary.pairwise_at`)."""
+    from panel.bayes.summary import cross_section_mixture
+
+    plan = Problem(panel, spec).plan
+    mean, cov, pos, greater, q05, q95 = cross_section_mixture(plan, draws, t, kind)
+    active = ~np.isnan(mean)
+    sub = np.ix_(active, active)
+    return mean[active], cov[sub], active, (pos[active], greater[sub], q05[active], q95[active])

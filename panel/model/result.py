@@ -23,7 +23,11 @@ class CrossSection:
     """Joint posterior of all premia at one date.
 
     ``mean`` (n,) and ``cov`` (n, n) over ``assets`` (those active at the date), per period;
-    ``prob_positive[i] = P(mu_i > 0)``; ``prob_greater.loc[i, j] = P(mu_i > mu_j)``.
+    ``prob_positive[i] = P(mu_i > 0)``; ``prob_greater.loc[i, j] = P(mu_i > mu_j)``.  A Bayesian
+    run's posterior at a date is a mixture of normals (one per parameter draw): ``mean`` and ``cov``
+    are the mixture's moments and ``mixture`` holds its probabilities and quantiles
+    ``(prob_positive (n,), prob_greater (n, n), q05 (n,), q95 (n,))``: the properties then return
+    those instead of the normal ones, and :meth:`table` adds ``q05`` and ``q95``.
     """
 
     date: pd.Timestamp
@@ -31,6 +35,7 @@ class CrossSection:
     assets: tuple[str, ...]
     mean: np.ndarray
     cov: np.ndarray
+    mixture: tuple | None = None
 
     def __repr__(self) -> str:
         return (f"<CrossSection {self.kind} at {self.date.date()}, {len(self.assets)} assets; "
@@ -42,10 +47,14 @@ class CrossSection:
 
     @property
     def prob_positive(self) -> np.ndarray:
+        if self.mixture is not None:
+            return self.mixture[0]
         return ndtr(self.mean / self.std)
 
     @property
     def prob_greater(self) -> pd.DataFrame:
+        if self.mixture is not None:
+            return pd.DataFrame(self.mixture[1], index=list(self.assets), columns=list(self.assets))
         d = self.mean[:, None] - self.mean[None, :]
         v = np.diag(self.cov)[:, None] + np.diag(self.cov)[None, :] - 2.0 * self.cov
         with np.errstate(divide="ignore", invalid="ignore"):
@@ -55,16 +64,20 @@ class CrossSection:
         return pd.DataFrame(out, index=list(self.assets), columns=list(self.assets))
 
     def table(self) -> pd.DataFrame:
-        """One row per asset: mean, std, P(mu > 0), ranked by mean (highest first)."""
+        """One row per asset: mean, std, P(mu > 0) (a mixture: and its 5% and 95% quantiles),
+        ranked by mean (highest first)."""
         frame = pd.DataFrame({"asset": self.assets, "mean": self.mean, "std": self.std,
                               "prob_positive": self.prob_positive})
+        if self.mixture is not None:
+            frame["q05"], frame["q95"] = self.mixture[2], self.mixture[3]
         return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
 
 
-def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: str = "smoothed") -> CrossSection:
+def cross_section_at(panel: Panel, spec: ModelSpec, params, date, kind: str = "smoothed") -> CrossSection:
     """Joint posterior of the premia at the last date on or before ``date`` (``kind`` filtered or
-    smoothed) at parameters ``params`` -- a fit's, or a stored run's without re-running its report."""
-    from panel.model.problem import covariance_at  # the plan is built only when asked
+    smoothed) at parameters ``params`` -- a fit's, or a stored run's without re-running its report.
+    ``params`` a list of Params (a Bayesian run's summary draws): the equal-weight mixture over them."""
+    from panel.model.problem import covariance_at, mixture_at  # the plan is built only when asked
 
     if kind not in ("filtered", "smoothed"):
         raise ValueError(f"kind must be 'filtered' or 'smoothed', got {kind!r}")
@@ -72,9 +85,12 @@ def cross_section_at(panel: Panel, spec: ModelSpec, params: Params, date, kind: 
     t = int(panel.dates.searchsorted(date, side="right") - 1)
     if t < 0:
         raise ValueError(f"date {date.date()} is before the first date {panel.dates[0].date()}")
-    mean, cov, active = covariance_at(panel, spec, params, t, kind)
+    if isinstance(params, (list, tuple)):
+        mean, cov, active, mixture = mixture_at(panel, spec, params, t, kind)
+    else:
+        (mean, cov, active), mixture = covariance_at(panel, spec, params, t, kind), None
     return CrossSection(date=panel.dates[t], kind=kind, assets=tuple(np.array(panel.assets)[active]),
-                        mean=mean, cov=cov)
+                        mean=mean, cov=cov, mixture=mixture)
 
 
 @dataclass(frozen=True, eq=False, repr=False)
@@ -85,7 +101,10 @@ class PanelFit:
     Fitted attributes: ``params``, ``loglik``, ``objective`` (log-likelihood plus log prior),
     ``n_params``, ``aic``, ``bic``, ``n_iter`` (E-steps), ``converged``, ``status``, ``message``,
     ``elapsed``; tables ``estimates``, ``factors``, ``parameters``, ``trace``, ``diagnostics``.
-    Settings: ``spec`` and ``start`` (warm-start parameters or None); data: ``panel``.
+    Settings: ``spec`` and ``start`` (warm-start parameters or None); data: ``panel``.  A Bayesian
+    run (``spec.estimation == "bayes"``, :mod:`panel.bayes.estimate`) has status ``mixed`` or ``not
+    mixed``, quantile columns in ``estimates``/``factors``/``parameters`` and its
+    :class:`panel.bayes.BayesResult` in ``posterior`` (None for ML).
     People read ``summary()`` (text; HTML in a notebook), ``annualised_estimates()`` and
     ``annualised_parameters()`` (% a year, :mod:`panel.model.summary`).
     """
@@ -111,6 +130,7 @@ class PanelFit:
     parameters: pd.DataFrame
     trace: pd.DataFrame
     diagnostics: pd.DataFrame
+    posterior: object | None = None
 
     @property
     def assets(self) -> tuple[str, ...]:
@@ -129,16 +149,24 @@ class PanelFit:
         return -2.0 * self.loglik + self.n_params * np.log(self.n_obs)
 
     def settings(self) -> dict:
-        """Everything needed to rebuild this run from its dataset (JSON-able)."""
-        return {"spec": self.spec.to_dict(),
-                "start": None if self.start is None else self.start.to_dict(),
-                "dataset_hash": self.panel.hash,
-                "as_of": str(self.dates[-1].date())}
+        """Everything needed to rebuild this run from its dataset (JSON-able); a Bayesian run adds
+        the seed its sampler used (derived from the spec's seed and the as-of date)."""
+        out = {"spec": self.spec.to_dict(),
+               "start": None if self.start is None else self.start.to_dict(),
+               "dataset_hash": self.panel.hash,
+               "as_of": str(self.dates[-1].date())}
+        if self.posterior is not None:
+            out["sampler_seed"] = int(self.posterior.settings["seed"])
+        return out
 
     def tables(self) -> dict[str, pd.DataFrame]:
-        return {"estimates": self.estimates, "factor_paths": self.factors,
-                "parameters": self.parameters, "em_trace": self.trace,
-                "diagnostics": self.diagnostics}
+        """The result tables the store records (a Bayesian run adds its summary draws)."""
+        out = {"estimates": self.estimates, "factor_paths": self.factors,
+               "parameters": self.parameters, "em_trace": self.trace,
+               "diagnostics": self.diagnostics}
+        if self.posterior is not None:
+            out["posterior_draws"] = self.posterior.draw_rows()
+        return out
 
     def summary(self) -> str:
         """Data, model, status, fit statistics and the latest premia (% a year), in a few lines."""
@@ -169,5 +197,7 @@ class PanelFit:
         return annualised_parameters(self)
 
     def cross_section(self, date, kind: str = "smoothed") -> CrossSection:
-        """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed)."""
-        return cross_section_at(self.panel, self.spec, self.params, date, kind)
+        """Joint posterior of the premia at ``date`` (``kind`` filtered or smoothed); for a Bayesian
+        run the mixture over its summary draws."""
+        params = self.params if self.posterior is None else self.posterior.summary_params()
+        return cross_section_at(self.panel, self.spec, params, date, kind)

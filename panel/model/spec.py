@@ -23,6 +23,11 @@ from dataclasses import asdict, dataclass, field, fields
 from panel import units
 
 RETURN_SHOCKS = ("diagonal", "factor", "full")
+ESTIMATIONS = ("ml", "bayes")
+#: The Bayesian settings (``estimation="bayes"``) and their defaults; an ML spec leaves them out of
+#: :meth:`ModelSpec.to_dict`, so ML settings read and store exactly as before they existed.
+BAYES_DEFAULTS = {"draws": 1000, "chains": 4, "seed": 0, "warmup": None, "priors": None,
+                  "summary_draws": 100}
 FIXABLE = ("own_premium_vol", "return_vol")
 #: Accepted spellings of fixable names (normalised to the first form when the spec is built).
 FIX_ALIASES = {"premium_vol": "own_premium_vol"}
@@ -30,6 +35,26 @@ FIX_ALIASES = {"premium_vol": "own_premium_vol"}
 
 class SpecError(ValueError):
     """A model specification that cannot be fitted; the message is one line naming the fix."""
+
+
+def _freeze_priors(priors, bayes: bool):
+    """Priors (a :class:`panel.bayes.priors.Priors`, a mapping, or None: the defaults) as the full
+    sorted (name, value) pairs of a Bayesian spec, so the spec stays immutable and hashable and the
+    stored settings name every prior; None for an ML spec without priors."""
+    if priors is None and not bayes:
+        return None
+    from panel.bayes.priors import PriorError, Priors   # scipy: only for Bayesian specs
+
+    if priors is None:
+        priors = Priors()
+    if not isinstance(priors, Priors):
+        if not isinstance(priors, (dict, tuple, list)):
+            raise SpecError(f"priors must be a panel.bayes.Priors or a dict, not {type(priors).__name__}")
+        try:
+            priors = Priors.from_dict(dict(priors))
+        except (PriorError, TypeError) as error:
+            raise SpecError(str(error).splitlines()[0]) from None
+    return tuple(sorted(priors.to_dict().items()))
 
 
 @dataclass(frozen=True)
@@ -148,6 +173,19 @@ class ModelSpec:
     starts : int
         Fits from this many starting points (the moment-based rule and ``starts - 1`` deterministic
         perturbations of it); the best optimum is kept and the result says how many reached it.
+    estimation : {"ml", "bayes"}
+        "ml": maximum likelihood by EM (the settings above); "bayes": the posterior by Gibbs
+        sampling (:mod:`panel.bayes`, DESIGN §3a) with the settings below.  Fixed volatilities, the
+        premium-volatility cap, the volatility scale and the initial premium apply to both;
+        ``premium_prior``/``return_prior``, ``starts`` and ``time_budget`` are ML only.
+    draws, chains, warmup : Bayes: kept draws per chain, chains, discarded warm-up sweeps per chain
+        (None: as many as ``draws``).
+    seed : Bayes: root seed.  The sampler's seed is derived from it and the data's last date
+        (:func:`panel.bayes.estimate.sampler_seed`), so every backfill vintage has its own stream
+        and a run reproduces bit for bit.
+    priors : Bayes: :class:`panel.bayes.Priors` or its dict (None: the documented defaults).
+    summary_draws : Bayes: parameter draws at which the filter and smoother run for the premium
+        summaries (bands, P(premium > 0), cross-sections).
     method : {"auto", "dense", "stretch", "balanced"}
         E-step path (:mod:`panel.kalman.paths`): "dense" is the reference; "stretch" decouples the
         panel's final balanced stretch exactly; "balanced" is "stretch" for fully balanced panels
@@ -174,9 +212,25 @@ class ModelSpec:
     premium_vol_convention: str = units.YEARLY_CHANGE
     starts: int = 1
     loglik_tol: float | None = 1e-4
+    estimation: str = "ml"
+    draws: int = BAYES_DEFAULTS["draws"]
+    chains: int = BAYES_DEFAULTS["chains"]
+    seed: int = BAYES_DEFAULTS["seed"]
+    warmup: int | None = BAYES_DEFAULTS["warmup"]
+    priors: tuple | None = BAYES_DEFAULTS["priors"]
+    summary_draws: int = BAYES_DEFAULTS["summary_draws"]
 
     def __post_init__(self):
         object.__setattr__(self, "fixed", _freeze(self.fixed))
+        object.__setattr__(self, "priors", _freeze_priors(self.priors, self.estimation == "bayes"))
+
+    @property
+    def bayes(self) -> bool:
+        return self.estimation == "bayes"
+
+    def prior_settings(self) -> dict | None:
+        """The Bayesian priors as a dict (every field; None for an ML spec)."""
+        return None if self.priors is None else dict(self.priors)
 
     def premium_variance(self, vol: float, ppy: int) -> float:
         """Per-period premium innovation variance of a premium volatility in this spec's convention."""
@@ -186,6 +240,12 @@ class ModelSpec:
     def to_dict(self) -> dict:
         out = asdict(self)
         out["fixed"] = dict(self.fixed)
+        if self.bayes:
+            out["priors"] = self.prior_settings()
+        else:       # ML settings stay as they were before Bayesian estimation existed
+            for key in BAYES_DEFAULTS:
+                del out[key]
+            del out["estimation"]
         return out
 
     @classmethod
@@ -220,6 +280,7 @@ class ModelSpec:
             raise SpecError(f"{k} common premium factor(s) are not identified with {N} assets; "
                             f"use fewer premium factors (0 for independent local levels)")
         _check_ranges(self)
+        _check_estimation(self)
         r = int(self.return_factors)
         structure = self.return_shocks
         if structure is None and r != 1 and not _identifiable(N, r):
@@ -342,6 +403,34 @@ def _check_ranges(spec: "ModelSpec") -> None:
         raise SpecError("tol and param_tol must be positive finite numbers")
     if not isinstance(spec.return_factors, int) or spec.return_factors < 0:
         raise SpecError(f"return_factors must be a whole number >= 0, got {spec.return_factors!r}")
+
+
+def _whole(value, low: int) -> bool:
+    return isinstance(value, int) and not isinstance(value, bool) and value >= low
+
+
+def _check_estimation(spec: "ModelSpec") -> None:
+    """One-line refusals of Bayesian settings that cannot be used, or that an ML spec would ignore."""
+    if spec.estimation not in ESTIMATIONS:
+        raise SpecError(f"estimation must be 'ml' or 'bayes', got {spec.estimation!r}")
+    if not spec.bayes:
+        given = [key for key, default in BAYES_DEFAULTS.items() if getattr(spec, key) != default]
+        if given:
+            raise SpecError(f"{', '.join(given)} apply to Bayesian estimation only; add "
+                            "estimation='bayes' (--bayes) or drop them")
+        return
+    for name, low in (("draws", 1), ("chains", 1), ("seed", 0), ("summary_draws", 1)):
+        if not _whole(getattr(spec, name), low):
+            raise SpecError(f"{name} must be a whole number >= {low}, got {getattr(spec, name)!r}")
+    if spec.warmup is not None and not _whole(spec.warmup, 0):
+        raise SpecError(f"warmup must be a whole number >= 0 (or None: as many as draws), got {spec.warmup!r}")
+    for name in ("premium_prior", "return_prior"):
+        if getattr(spec, name) is not None:
+            raise SpecError(f"{name} is a prior of ML estimation; with estimation='bayes' state priors "
+                            "with priors=Priors(...) instead")
+    if spec.starts != 1 or spec.time_budget is not None:
+        raise SpecError("starts and time_budget apply to ML estimation only; drop them for "
+                        "estimation='bayes' (several chains guard against a poor start)")
 
 
 def _most_factors(n: int) -> int:

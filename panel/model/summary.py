@@ -23,11 +23,14 @@ _Z90 = 1.6448536269514722
 
 
 def annualised_estimates(fit) -> pd.DataFrame:
-    """``date, asset`` and the filtered / smoothed premium and std in % a year (``*_pct_a_year``)."""
+    """``date, asset`` and the filtered / smoothed premium and std in % a year (``*_pct_a_year``;
+    a Bayesian run adds its posterior quantiles)."""
     ppy = fit.periods_per_year
     est = fit.estimates
     out = est[["date", "asset"]].copy()
-    for col in ("filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std"):
+    quantiles = ("filtered_q05", "filtered_q95", "smoothed_q05", "smoothed_q95")   # Bayesian runs
+    for col in ("filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std",
+                *(c for c in quantiles if c in est)):
         out[f"{col}_pct_a_year"] = units.annual_premium(est[col].to_numpy(float), ppy) * 100.0
     out.attrs.update(units=PREMIUM_UNITS, periods_per_year=ppy)
     return out
@@ -55,7 +58,10 @@ def _facts(fit) -> list[tuple[str, str]]:
         ("model", f"{k} common premium factor(s), {fit.structure} return shocks"),
         ("status", f"{fit.status} - {fit.message}"),
         ("fit", f"log-likelihood {fit.loglik:,.2f}, AIC {fit.aic:,.2f}, BIC {fit.bic:,.2f}, "
-                f"{fit.n_params} parameters, {fit.n_iter} E-steps, {fit.elapsed:.1f} s"),
+                f"{fit.n_params} parameters, {fit.n_iter} E-steps, {fit.elapsed:.1f} s"
+         if fit.posterior is None else
+         f"log-likelihood at the posterior-mean parameters {fit.loglik:,.2f}, {fit.n_params} "
+         f"parameters, {fit.n_iter} Gibbs sweeps, {fit.elapsed:.1f} s"),
     ]
 
 
@@ -65,7 +71,10 @@ def _latest(fit) -> pd.DataFrame:
     now = est[est["date"] == fit.dates[-1]].set_index("asset")
     par = annualised_parameters(fit).set_index("asset")
     mean, std = now["filtered_mean_pct_a_year"], now["filtered_std_pct_a_year"]
-    return pd.DataFrame({"premium": mean, "lo90": mean - _Z90 * std, "hi90": mean + _Z90 * std,
+    lo, hi = mean - _Z90 * std, mean + _Z90 * std
+    if "filtered_q05_pct_a_year" in now:          # a Bayesian run: the posterior quantiles
+        lo, hi = now["filtered_q05_pct_a_year"], now["filtered_q95_pct_a_year"]
+    return pd.DataFrame({"premium": mean, "lo90": lo, "hi90": hi,
                          "premium vol": par["premium_vol_pct_a_year"],
                          "return vol": par["return_vol_pct_a_year"]}).loc[[a for a in fit.assets if a in now.index]]
 

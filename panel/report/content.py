@@ -41,6 +41,13 @@ STATUS_WORDS = {
                 "likelihood from the last point; usually close to the maximum, but not certified."),
     "fixed": ("Parameters fixed, not estimated", "All parameters were given; the filter and smoother "
               "ran at them, so nothing was estimated."),
+    "mixed": ("Bayesian: the chains mixed", "Every monitored parameter has split R-hat below 1.01 and "
+              "effective sample sizes above 400 (common practice): the posterior summaries, bands "
+              "(5% and 95% posterior quantiles) and probabilities can be read. Parameters shown are "
+              "posterior means."),
+    "not mixed": ("Bayesian: the chains have NOT mixed", "Some parameter's chains disagree or are too "
+                  "short (named in the message): the bands and probabilities may be wrong. Run more "
+                  "draws (--draws) or a longer warm-up (--warmup)."),
 }
 
 
@@ -89,9 +96,10 @@ class ReportContent:
 def gather(store, run_id: int) -> ReportContent:
     """Read stored run ``run_id`` and what the report needs around it (raises ``StoreError``,
     ``SpecError`` or ``BackfillError`` with one line)."""
-    from panel.model.fit import evaluate
+    from panel.model.result import cross_section_at
     from panel.store import list_datasets, run_tables
-    from panel.vintages.reproduce import run_inputs, same_model_runs, stored_params, vintage_history
+    from panel.vintages.reproduce import (run_inputs, same_model_runs, stored_draws, stored_params,
+                                          vintage_history)
 
     inputs = run_inputs(store, run_id)
     run = inputs.run
@@ -101,9 +109,10 @@ def gather(store, run_id: int) -> ReportContent:
     names = list_datasets(store)
     hit = names[names["hash"] == run["dataset_hash"]]
     dataset = "" if hit.empty else str(hit["current_names"].iloc[0] or hit["name"].iloc[0] or "")
-    result = evaluate(inputs.panel, params, inputs.spec)
-    as_of = result.dates[-1]
-    cross_section = result.cross_section(as_of, "smoothed")  # at the cut-off smoothed = filtered
+    as_of = inputs.panel.dates[-1]
+    # at the cut-off smoothed = filtered; a Bayesian run: the mixture over its stored draws
+    cross_section = cross_section_at(inputs.panel, inputs.spec,
+                                     stored_draws(store, inputs) or params, as_of, "smoothed")
     siblings = same_model_runs(store, run["id"])
     earlier = siblings[pd.to_datetime(siblings["as_of"]) < pd.Timestamp(run["as_of"])]
     this = pd.DataFrame([{k: run[k] for k in ("id", "as_of", "kind", "status", "label")}])
@@ -177,6 +186,19 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
     lines.append(("window", str(settings.get("window", "expanding"))))
     lines.append(("start", "warm (recorded parameters)" if settings.get("start") else "default rule"))
     budget = "" if spec.time_budget is None else f", time budget {spec.time_budget:g} s"
+    if spec.bayes:
+        warmup = spec.draws if spec.warmup is None else spec.warmup
+        priors = spec.prior_settings()
+        lines.append(("estimation", f"Bayesian (Gibbs), {spec.chains} chains x {spec.draws} draws after "
+                                    f"{warmup} warm-up, seed {spec.seed} (sampler seed "
+                                    f"{settings.get('sampler_seed', '?')}), summaries over "
+                                    f"{spec.summary_draws} draws, path {spec.method}"))
+        lines.append(("priors", f"own premium vol {priors['premium_vol_family']} scale "
+                                f"{100 * priors['premium_vol']:g}% a year, loading scale "
+                                f"{100 * priors['loading_vol']:g}% a year, return vol "
+                                + ("from the data" if priors["return_vol"] is None
+                                   else f"{100 * priors['return_vol']:g}% a year")))
+        return lines
     lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
                                 f"{spec.tol:g}/{spec.param_tol:g}, {spec.starts} start(s), std errors "
                                 f"{spec.std_errors}, path {spec.method}"))

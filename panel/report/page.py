@@ -161,7 +161,8 @@ def _settings(c: ReportContent) -> str:
 def _fit(c: ReportContent) -> str:
     run = c.run
     headline, meaning = c.status_words
-    tone = {"converged": "ok", "fixed": "ok", "boundary": "edge"}.get(str(run.get("status")), "stop")
+    tone = {"converged": "ok", "fixed": "ok", "mixed": "ok", "boundary": "edge"}.get(str(run.get("status")),
+                                                                                   "stop")
     facts = [("log-likelihood", _num(run.get("loglik"))), ("AIC", _num(run.get("aic"))),
              ("BIC", _num(run.get("bic"))), ("free parameters", run.get("n_params")),
              ("iterations (E-steps)", run.get("iterations")), ("estimator's message", run.get("message") or "–")]
@@ -174,11 +175,14 @@ def _cross_section(c: ReportContent) -> str:
     rows = []
     for i, r in enumerate(ranked.itertuples(index=False)):
         m, s = r.mean * c.ppy, r.std * c.ppy
-        rows.append((i + 1, r.asset, _pct(m), f"[{_pct(m - Z90 * s)}, {_pct(m + Z90 * s)}]", _pct(s),
+        lo, hi = plots.band_edges(r.mean, r.std, c.ppy, getattr(r, "q05", None), getattr(r, "q95", None))
+        rows.append((i + 1, r.asset, _pct(m), f"[{_pct(lo)}, {_pct(hi)}]", _pct(s),
                      f"{100 * r.prob_positive:.0f}%"))
+    basis = ("the posterior draws (a Bayesian run: bands are posterior 5% and 95% quantiles)"
+             if cs.mixture is not None else "the normal posterior")
     table = _table(["rank", "asset", "premium", "90% band", "std", "P(premium > 0)"], rows, numeric_from=2,
                    caption=f"% a year (x{c.ppy}); at the as-of date the filtered (real-time) and smoothed "
-                           "(revised) estimates coincide. P(premium > 0) from the normal posterior.")
+                           f"(revised) estimates coincide. P(premium > 0) from {basis}.")
     fig = plots.cross_section_chart(ranked, c.ppy, cs.date, "smoothed", cs.date,
                                     title=plots.heading("Cross-section", c.dataset, c.run.get("label")))
     body = _figure(fig, f"Premia at {_day(cs.date)}, dot = mean, bar = 90% band.", "cross-section chart") + table

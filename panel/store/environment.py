@@ -101,7 +101,7 @@ def canonical_json(value) -> str:
 
 
 #: Settings that vary from vintage to vintage of one backfill and so stay out of its key.
-PER_VINTAGE_SETTINGS = ("as_of", "start")
+PER_VINTAGE_SETTINGS = ("as_of", "start", "sampler_seed")
 
 
 def backfill_key(dataset_hash: str, settings: dict) -> str:

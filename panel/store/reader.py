@@ -131,20 +131,38 @@ def get_run(store: Store, run_id: int) -> dict:
     return dict(row)
 
 
+def is_bayes(run: dict) -> bool:
+    """Whether a ``runs`` row is a Bayesian run (its recorded spec says ``estimation: bayes``)."""
+    settings = run.get("settings")
+    settings = json.loads(settings) if isinstance(settings, str) else (settings or {})
+    return (settings.get("spec") or {}).get("estimation") == "bayes"
+
+
 def run_tables(store: Store, run_id: int, kinds=None) -> dict[str, pd.DataFrame]:
     """A run's result tables keyed by ``PanelFit`` attribute, with the PanelFit columns, rows sorted by
-    their keys (see ``schema.RESULT_ORDER``); ``kinds``: only these tables (default all)."""
-    key = get_run(store, run_id)["id"]
+    their keys (see ``schema.RESULT_ORDER``); ``kinds``: only these tables (default all the run
+    has: ``posterior_draws`` only for a Bayesian run)."""
+    run = get_run(store, run_id)
+    key = run["id"]
+    if kinds is None:           # every table of the run: posterior draws only for a Bayesian one
+        kinds = [k for k in schema.RESULT_TABLES if k != "posterior_draws" or is_bayes(run)]
     out = {}
     with store.engine.connect() as conn:
         for kind, table in schema.RESULT_TABLES.items():
-            if kinds is not None and kind not in kinds:
+            if kind not in kinds:
                 continue
             statement = (select(*(c for c in table.columns if c.name != "run_id"))
                          .where(table.c.run_id == key)
                          .order_by(*(table.c[n] for n in schema.RESULT_ORDER[kind])))
-            out[kind] = read_frame(conn, statement)
+            out[kind] = _without_empty_bayes(read_frame(conn, statement), kind)
     return out
+
+
+def _without_empty_bayes(frame: pd.DataFrame, kind: str) -> pd.DataFrame:
+    """``frame`` without the Bayesian columns (``schema.BAYES_COLUMNS``) when they are all NULL:
+    an ML run reads back with exactly the PanelFit columns."""
+    empty = [c for c in schema.BAYES_COLUMNS.get(kind, ()) if c in frame and frame[c].isna().all()]
+    return frame.drop(columns=empty) if len(empty) == len(schema.BAYES_COLUMNS.get(kind, ())) else frame
 
 
 def run_estimates(store: Store, run_id: int, assets=None, last: int | None = None,
@@ -166,6 +184,8 @@ def run_estimates(store: Store, run_id: int, assets=None, last: int | None = Non
                       .order_by(est.c.date.desc()).limit(int(last)))
             statement = statement.where(est.c.date.in_(recent.scalar_subquery()))
         frame = read_frame(conn, statement.order_by(est.c.date, est.c.asset))
+    if columns is None:
+        frame = _without_empty_bayes(frame, "estimates")
     return frame, int(n_dates)
 
 
@@ -217,9 +237,11 @@ def export_run(store: Store, run_id: int, path, table: str = "estimates", overwr
         target = check_target(target, protected=store_files, overwrite=overwrite)
     except OutputError as error:
         raise StoreError(str(error)) from None
-    key = get_run(store, run_id)["id"]
+    run = get_run(store, run_id)
+    key = run["id"]
     source = schema.RESULT_TABLES[table]
-    columns = [c for c in source.columns if c.name != "run_id"]
+    skip = () if is_bayes(run) else schema.BAYES_COLUMNS.get(table, ())    # NULL for ML runs
+    columns = [c for c in source.columns if c.name != "run_id" and c.name not in skip]
     csv = suffix == ".csv"
     with store.engine.connect() as conn:
         if store.is_duckdb:

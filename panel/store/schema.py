@@ -24,7 +24,7 @@ from sqlalchemy import (BigInteger, Boolean, Column, Date, DateTime, Double, Int
 from sqlalchemy.dialects.postgresql import JSONB
 
 #: Schema version this code reads and writes (the highest numbered file in ``migrations/``).
-SCHEMA_VERSION = 2
+SCHEMA_VERSION = 3
 
 metadata = MetaData()
 
@@ -140,7 +140,13 @@ parameters = Table(
     Column("row", String),
     Column("col", String),
     Column("value", Double),
-    Column("std_error", Double),
+    Column("std_error", Double),                        # Bayes: the posterior std
+    Column("q05", Double),                              # version 3: Bayes posterior (NULL for ML)
+    Column("q50", Double),
+    Column("q95", Double),
+    Column("rhat", Double),
+    Column("ess_bulk", Double),
+    Column("ess_tail", Double),
 )
 
 estimates = Table(
@@ -155,6 +161,8 @@ estimates = Table(
     Column("predictive_mean", Double),
     Column("predictive_std", Double),
     Column("std_innovation", Double),
+    *(Column(name, Double) for name in ("filtered_q05", "filtered_q95", "smoothed_q05",
+                                        "smoothed_q95")),                  # version 3: Bayes only
 )
 
 factor_paths = Table(
@@ -166,6 +174,8 @@ factor_paths = Table(
     Column("filtered_std", Double),
     Column("smoothed_mean", Double),
     Column("smoothed_std", Double),
+    *(Column(name, Double) for name in ("filtered_q05", "filtered_q95", "smoothed_q05",
+                                        "smoothed_q95")),                  # version 3: Bayes only
 )
 
 em_trace = Table(
@@ -188,13 +198,33 @@ diagnostics = Table(
     Column("pvalue", Double),
 )
 
-#: A run's result tables, keyed by the ``PanelFit`` attribute that holds them.
+posterior_draws = Table(  # version 3: a Bayesian run's summary parameter draws (panel.bayes.estimate)
+    "posterior_draws", metadata,
+    Column("run_id", BigInteger, nullable=False),
+    Column("draw", Integer, nullable=False),
+    Column("name", String, nullable=False),
+    Column("row", String),
+    Column("col", String),
+    Column("value", Double),
+)
+
+#: A run's result tables, keyed by the ``PanelFit`` attribute that holds them (``posterior_draws``:
+#: ``PanelFit.tables()`` of a Bayesian run only).
 RESULT_TABLES: dict[str, Table] = {
     "estimates": estimates,
     "factors": factor_paths,
     "parameters": parameters,
     "trace": em_trace,
     "diagnostics": diagnostics,
+    "posterior_draws": posterior_draws,
+}
+
+#: Columns only a Bayesian run fills: a writer may leave them out (NULL), and a reader leaves them
+#: out where a run has none, so ML runs read back with exactly the PanelFit columns.
+BAYES_COLUMNS: dict[str, tuple[str, ...]] = {
+    "estimates": ("filtered_q05", "filtered_q95", "smoothed_q05", "smoothed_q95"),
+    "factors": ("filtered_q05", "filtered_q95", "smoothed_q05", "smoothed_q95"),
+    "parameters": ("q05", "q50", "q95", "rhat", "ess_bulk", "ess_tail"),
 }
 
 #: Keys of the natural row order used when reading a result table back.
@@ -204,4 +234,5 @@ RESULT_ORDER: dict[str, tuple[str, ...]] = {
     "parameters": ("name", "row", "col"),
     "trace": ("iteration",),
     "diagnostics": ("asset", "statistic", "lags"),
+    "posterior_draws": ("draw", "name", "row", "col"),
 }

@@ -118,6 +118,9 @@ def _check_tables(tables: dict) -> dict[str, pd.DataFrame]:
         if not isinstance(frame, pd.DataFrame):
             raise StoreError(f"result table {key!r} is a {type(frame).__name__}, not a DataFrame")
         want = [c.name for c in schema.RESULT_TABLES[kind].columns if c.name != "run_id"]
+        optional = [c for c in schema.BAYES_COLUMNS.get(kind, ()) if c not in frame.columns]
+        if optional:            # an ML run: the Bayesian columns are NULL
+            frame = frame.assign(**{c: np.nan for c in optional})
         missing = [c for c in want if c not in frame.columns]
         extra = [str(c) for c in frame.columns if c not in want]
         if missing or extra:

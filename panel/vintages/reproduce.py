@@ -35,6 +35,7 @@ TABLE_KEYS = {
     "parameters": ("name", "row", "col"),
     "trace": ("iteration",),
     "diagnostics": ("asset", "statistic", "lags"),
+    "posterior_draws": ("draw", "name", "row", "col"),
 }
 #: Columns that measure time, not results: never compared.
 TIMING_COLUMNS = ("elapsed_s",)
@@ -113,13 +114,38 @@ def stored_params(store: Store, inputs: RunInputs, tables: dict | None = None):
     return params
 
 
+def stored_draws(store: Store, inputs: RunInputs) -> list | None:
+    """A Bayesian run's summary parameter draws (list of Params) from the store; None for ML."""
+    if not inputs.spec.bayes:
+        return None
+    from panel.bayes.estimate import draws_from_rows
+    from panel.model.problem import Problem
+
+    rows = run_tables(store, inputs.run["id"], kinds=("posterior_draws",))["posterior_draws"]
+    if len(rows) == 0:
+        raise StoreError(f"run {inputs.run['id']} is a Bayesian run without its posterior draws; "
+                         "reproduce it with --save to store them")
+    return draws_from_rows(rows, inputs.panel.assets, Problem(inputs.panel, inputs.spec).rs.structure)
+
+
 def evaluated_run(store: Store, run_id: int) -> PanelFit:
     """The stored run filtered and smoothed again at its stored parameters (no estimation): the
-    same estimates, plus what is not stored (joint cross-sections at any date)."""
+    same estimates, plus what is not stored (joint cross-sections at any date).  A Bayesian run is
+    evaluated at its posterior-mean parameters: use :func:`stored_cross_section` for its posterior
+    cross-sections (the mixture over its stored draws)."""
     from panel.model.fit import evaluate, fit  # the estimator, only when estimating
 
     inputs = run_inputs(store, run_id)
-    return evaluate(inputs.panel, stored_params(store, inputs), inputs.spec)
+    return evaluate(inputs.panel, stored_params(store, inputs), _ml(inputs.spec))
+
+
+def _ml(spec: ModelSpec) -> ModelSpec:
+    """The ML twin of a spec (evaluating at fixed parameters has no Bayesian settings)."""
+    import dataclasses
+
+    from panel.model.spec import BAYES_DEFAULTS
+
+    return dataclasses.replace(spec, estimation="ml", **BAYES_DEFAULTS) if spec.bayes else spec
 
 
 def stored_cross_section(store: Store, run_id: int, date=None, kind: str = "smoothed"):
@@ -130,7 +156,8 @@ def stored_cross_section(store: Store, run_id: int, date=None, kind: str = "smoo
 
     inputs = run_inputs(store, run_id)
     when = inputs.panel.dates[-1] if date is None else date
-    return cross_section_at(inputs.panel, inputs.spec, stored_params(store, inputs), when, kind), inputs
+    params = stored_draws(store, inputs) or stored_params(store, inputs)
+    return cross_section_at(inputs.panel, inputs.spec, params, when, kind), inputs
 
 
 # ---------------------------------------------------------------------------------------------
@@ -222,7 +249,8 @@ def compare_table(name: str, recorded: pd.DataFrame, rebuilt: pd.DataFrame, rtol
     b = _normalise(rebuilt[list(recorded.columns)] if set(recorded.columns) <= set(rebuilt.columns)
                    else rebuilt, keys)
     rows_a, rows_b = len(a), len(b)
-    if rows_a != rows_b or not a[list(keys)].equals(b[list(keys)]):
+    same_keys = rows_a == 0 or a[list(keys)].equals(b[list(keys)])   # empty frames: dtypes may differ
+    if rows_a != rows_b or not same_keys:
         return TableDiff(name, rows_a, rows_b, 0, np.inf, np.inf, "", False,
                          f"rows differ ({rows_a} recorded, {rows_b} rebuilt)")
     numeric = [c for c in a.columns if c not in keys and c not in TIMING_COLUMNS
@@ -304,9 +332,14 @@ def reproduce(store: Store, run_id: int, *, rtol: float = 1e-10, atol: float = 0
     result = fit(inputs.panel, inputs.spec, start=inputs.start)
     rebuilt = {"estimates": result.estimates, "factors": result.factors, "parameters": result.parameters,
                "trace": result.trace, "diagnostics": result.diagnostics}
+    if result.posterior is not None:
+        rebuilt["posterior_draws"] = result.posterior.draw_rows()
     diffs = [compare_scalars(inputs.run, result, rtol, atol)]
     for name in TABLE_KEYS:
-        diffs.append(compare_table(name, recorded[name], rebuilt[name], rtol, atol))
+        if name not in rebuilt and name not in recorded:
+            continue        # an ML run has no posterior draws
+        diffs.append(compare_table(name, recorded[name], rebuilt.get(name, recorded[name].iloc[:0]),
+                                   rtol, atol))
     saved = None
     if save:
         run, tables = from_fit(result, dataset_hash=inputs.run["dataset_hash"], as_of=inputs.run["as_of"],
