@@ -369,8 +369,9 @@ def _in_range(name: str, value, bounds, zero_ok: bool = False) -> None:
     ok = isinstance(value, (int, float)) and math.isfinite(value) and (
         (zero_ok and value == 0) or lo <= value <= hi)
     if not ok:
+        shown = f"{100 * value:g}%" if isinstance(value, (int, float)) else repr(value)
         raise SpecError(f"{name} must be {'0 or ' if zero_ok else ''}between {100 * lo:g}% and {100 * hi:g}% "
-                        f"a year, got {value!r}")
+                        f"a year, got {shown}")
 
 
 def _check_ranges(spec: "ModelSpec") -> None:
