@@ -1,5 +1,5 @@
 """Benchmark of the Gibbs sampler against the ML fit of the same panel, in the same process:
-``python -m panel.bayes.bench [--quick] [--threads N]``.
+``python -m panel.bench.bayes [--quick] [--threads N]``.
 
 Panel: ``panel.bench.fit.simulate`` (invented, balanced, monthly; N=100, T=600 by default, with one
 premium factor and one return factor).  Timed: the ML fit ``panel.model.fit.fit`` (default
@@ -20,12 +20,12 @@ TARGET = 15.0
 
 
 def main(argv=None) -> int:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser = argparse.ArgumentParser(prog="python -m panel.bench.bayes", description=__doc__.splitlines()[0])
     parser.add_argument("--quick", action="store_true", help="small panel, short chains")
     parser.add_argument("--threads", type=int, default=1, help="BLAS threads (default 1)")
     args = parser.parse_args(argv)
-    # ``python -m panel.bayes.bench`` has loaded numpy (the package's __init__) before this line, so
-    # the limit goes through riskprem's own threadpoolctl limit around fit and sample
+    # numpy may already be loaded (by an importer of this module) before this line, so the limit goes
+    # through riskprem's own threadpoolctl limit around fit and sample
     # (panel.threads); the variables still reach worker processes.
     os.environ["RISKPREM_BLAS_THREADS"] = str(args.threads)
     for var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
