@@ -5,11 +5,11 @@ volatility scale and with the informative initial prior.  Invented data, fixed s
 import numpy as np
 import pytest
 
-from panel.kalman import paths
+from panel.kalman import impute, paths
 from panel.kalman.chain import Basis, filter_chains, smooth_chains, spectral
 from panel.kalman.dense import dense_smoother
 from panel.kalman.stretch import final_stretch_start, stretch_smoother
-from panel.model.mstep import impute_sum
+from panel.model.mstep import impute_sum, seen_diagonal
 
 T, N = 30, 5
 REPORT_FIELDS = ("filtered_mean", "filtered_var", "smoothed_mean", "smoothed_var", "predicted_mean",
@@ -211,3 +211,59 @@ def test_structured_return_covariance_reduction_equals_dense(pattern, r, small):
                             (H, est.e_groups, ref.estep.e_groups)):
         a, b = impute_sum(mine, C)[0], impute_sum(theirs, C)[0]
         _close(a, b, 1e-8 * max(1.0, np.abs(b).max()))     # relative: psi = 1e-9 scales M up
+
+
+# --------------------------------------------------------------- collapsed moments (bounded memory)
+def _isolated_gaps(rng, rate=0.06):
+    Y = _panel(rng, "balanced")
+    holes = rng.random((T, N)) < rate
+    holes[0] = False                                 # every asset enters at the first date
+    Y[holes] = np.nan
+    return Y
+
+
+@pytest.mark.parametrize("structure", ["diagonal", "factor", "full"])
+def test_collapsed_estep_keeps_imputed_moments_and_seen_diagonal(structure, monkeypatch):
+    """A Plan's E-step on a panel with more observed sets than MAX_GROUPS returns one imputed
+    group per kind (O(N^2) memory), with the same imputed sums and seen diagonals (all the M-step
+    and the score read) as the dense reference's uncollapsed groups."""
+    rng = np.random.default_rng(41)
+    Y = _isolated_gaps(rng)
+    _, Sigma, H = _model(rng, structure)
+    ref = dense_smoother(Y, Sigma, H).estep
+    monkeypatch.setattr(impute, "MAX_GROUPS", 3)     # a small panel has few observed sets
+    assert len(ref.e_groups) > impute.MAX_GROUPS      # the collapse is really exercised
+    for method in ("dense", "auto"):
+        est = paths.Plan(Y, method=method).estep(Sigma, H)
+        assert est.loglik == pytest.approx(ref.loglik, rel=1e-12)
+        assert len(est.e_groups) == 1 and est.e_groups[0].mask.all()
+        for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
+            a, na = impute_sum(mine, C)
+            b, nb = impute_sum(theirs, C)
+            assert na == nb
+            _close(a, b, 1e-12)
+            for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
+                _close(x, y, 1e-12)
+
+
+@pytest.mark.parametrize("structure", ["diagonal", "factor"])
+def test_fit_with_collapsed_moments_equals_fit_without(structure, monkeypatch):
+    """The same fit (parameters, log-likelihood, E-steps) with and without the collapse."""
+    import panel
+    from panel.bench.fit import simulate
+
+    frame, _, _ = simulate(4, 120, "balanced", seed=5)
+    holes = np.random.default_rng(6).random(frame.shape) < 0.05
+    holes[0] = False
+    pan = panel.Panel.from_frame(frame.mask(holes))
+    spec = panel.ModelSpec(premium_factors=1 if structure == "factor" else 0,
+                           return_shocks=structure, return_factors=1,
+                           std_errors="never", max_iter=60)
+    monkeypatch.setattr(impute, "MAX_GROUPS", 3)       # collapse this small panel's groups
+    got = panel.fit(pan, spec)
+    monkeypatch.setattr(impute, "MAX_GROUPS", 10 ** 9)  # never collapse
+    ref = panel.fit(pan, spec)
+    assert got.n_iter == ref.n_iter
+    assert got.loglik == pytest.approx(ref.loglik, rel=1e-10)
+    for name in ("q", "psi"):
+        _close(getattr(got.params, name), getattr(ref.params, name), 1e-7)

@@ -21,6 +21,7 @@ from fractions import Fraction
 import numpy as np
 import pytest
 
+from panel.kalman import impute
 from panel.kalman.types import EStep, MomentGroup
 from panel.model import mstep as ms
 from panel.model.params import Packer, Params, canonical_loadings
@@ -219,7 +220,7 @@ def test_impute_sum_equals_per_group_formula(pattern, kind, monkeypatch):
         masks = [m for m in masks if m.any()]
     groups = moments(rng, C, masks, rng.integers(1, 6, len(masks)).tolist())
     calls = {"nested": 0, "precision": 0}
-    nested, add_group = ms._nested_sum, ms._add_group
+    nested, add_group = impute._nested_sum, impute._add_group
 
     def count_nested(chain, C):
         calls["nested"] += 1
@@ -229,8 +230,8 @@ def test_impute_sum_equals_per_group_formula(pattern, kind, monkeypatch):
         calls["precision"] += precision is not None
         return add_group(total, mask, count, M, C, precision)
 
-    monkeypatch.setattr(ms, "_nested_sum", count_nested)
-    monkeypatch.setattr(ms, "_add_group", count_group)
+    monkeypatch.setattr(impute, "_nested_sum", count_nested)
+    monkeypatch.setattr(impute, "_add_group", count_group)
     got, n_got = ms.impute_sum(groups, C)
     ref, n_ref = reference_impute(groups, C)
     assert n_got == n_ref
@@ -270,7 +271,7 @@ def test_nested_sum_alone_equals_per_group_formula():
     masks = staircase(n, rng.permutation(n))[1:-1:2]
     groups = moments(rng, C, masks, [2, 3, 4, 5, 6])
     chain = [(g.mask, g.count, g.M) for g in groups]
-    assert rel_err(ms._nested_sum(chain, C), reference_impute(groups, C)[0]) < 1e-12
+    assert rel_err(impute._nested_sum(chain, C), reference_impute(groups, C)[0]) < 1e-12
 
 
 # --------------------------------------------------------------------------- score, log prior

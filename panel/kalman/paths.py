@@ -19,6 +19,7 @@ import numpy as np
 
 from panel.kalman import segments
 from panel.kalman.dense import dense_smoother, first_observations
+from panel.kalman.impute import collapse
 from panel.kalman.stretch import StretchData, final_stretch_start, stretch_smoother
 from panel.kalman.types import EStep, Smoothed
 
@@ -109,7 +110,17 @@ class Plan:
 
     def estep(self, Sigma, H, h_parts=None) -> EStep:
         """Log-likelihood and EM moments at ``(Sigma, H)``; ``h_parts = (B, psi)`` when
-        ``H = B B' + diag(psi)`` (a cheaper exact eigenproblem on the stretch path)."""
+        ``H = B B' + diag(psi)`` (a cheaper exact eigenproblem on the stretch path).
+
+        Beyond :data:`panel.kalman.impute.MAX_GROUPS` observed sets, the moments come as one group
+        imputed under ``Sigma`` (premium innovations) and ``H`` (return shocks), so the result holds
+        O(N^2) whatever the gap pattern: use it with these same parameters (as the M-step and the
+        score do)."""
+        est = self._estep(Sigma, H, h_parts)
+        return EStep(est.loglik, collapse(est.w_groups, np.asarray(Sigma, dtype=float)),
+                     collapse(est.e_groups, np.asarray(H, dtype=float)))
+
+    def _estep(self, Sigma, H, h_parts) -> EStep:
         if self.segments is not None:
             try:
                 return segments.segment_estep(self.segments, Sigma, H, h_parts=h_parts)

@@ -13,11 +13,14 @@ class MomentGroup:
 
     ``mask`` (N,) bool marks the components present, ``count`` the number of dates summed, ``M``
     (n, n) the sum of ``E[x_t x_t' | Y]`` over those dates for the present components ``x_t``.
+    ``seen`` is None, or for a group collapsed by :func:`panel.kalman.impute.collapse` (full mask,
+    unseen parts imputed) the (N,) sums of the seen second moments and (N,) counts of dates seen.
     """
 
     mask: np.ndarray
     count: int
     M: np.ndarray
+    seen: tuple | None = None
 
 
 @dataclass
