@@ -7,7 +7,7 @@ import pytest
 
 from panel.kalman import impute, paths
 from panel.kalman.chain import Basis, filter_chains, smooth_chains, spectral
-from panel.kalman.dense import dense_smoother
+from panel.kalman.dense import dense_filter, dense_smoother
 from panel.kalman.stretch import final_stretch_start, stretch_smoother
 from panel.model.mstep import impute_sum, seen_diagonal
 
@@ -267,3 +267,49 @@ def test_fit_with_collapsed_moments_equals_fit_without(structure, monkeypatch):
     assert got.loglik == pytest.approx(ref.loglik, rel=1e-10)
     for name in ("q", "psi"):
         _close(getattr(got.params, name), getattr(ref.params, name), 1e-7)
+
+
+@pytest.mark.parametrize("pattern", ["staircase", "exits", "gaps"])
+@pytest.mark.parametrize("scaled,informative", [(False, False), (True, True)])
+def test_checkpointed_filter_recomputes_the_same_covariances(pattern, scaled, informative):
+    """dense_filter(keep_every=K) gives bit for bit the covariances it no longer keeps."""
+    rng = np.random.default_rng(7)
+    Y = _panel(rng, pattern)
+    _, Sigma, H = _model(rng, "factor")
+    s2 = rng.uniform(0.5, 2.0, T) if scaled else np.ones(T)
+    init = (0.02, 0.3) if informative else None
+    ref = dense_filter(Y, Sigma, H, s2, init=init)
+    for K in (1, 4, 7, T + 3):
+        got = dense_filter(Y, Sigma, H, s2, init=init, keep_every=K)
+        assert got.loglik == ref.loglik
+        for t in range(T - 1, -1, -1):                # the backward pass's order
+            assert np.array_equal(got.Pp[t], ref.Pp[t]) and np.array_equal(got.Pf[t], ref.Pf[t])
+
+
+@pytest.mark.parametrize("structure", ["diagonal", "factor", "full"])
+@pytest.mark.parametrize("pattern", ["staircase", "gaps"])
+def test_bounded_dense_estep_equals_unbounded(structure, pattern, monkeypatch):
+    """dense_smoother(bounded=True): same E-step as the unbounded reference; bit for bit while
+    nothing is collapsed, to rounding (1e-12) once the moments are folded as they form."""
+    rng = np.random.default_rng(11)
+    Y = _isolated_gaps(rng, 0.15) if pattern == "gaps" else _panel(rng, pattern)
+    _, Sigma, H = _model(rng, structure)
+    s2 = rng.uniform(0.5, 2.0, T)
+    ref = dense_smoother(Y, Sigma, H, s2).estep
+    same = dense_smoother(Y, Sigma, H, s2, bounded=True).estep
+    assert same.loglik == ref.loglik
+    assert len(same.e_groups) == len(ref.e_groups)
+    for mine, theirs in ((same.w_groups, ref.w_groups), (same.e_groups, ref.e_groups)):
+        for a, b in zip(mine, theirs):
+            assert np.array_equal(a.mask, b.mask) and a.count == b.count and np.array_equal(a.M, b.M)
+    monkeypatch.setattr(impute, "MAX_GROUPS", 2)
+    est = dense_smoother(Y, Sigma, H, s2, bounded=True).estep
+    assert est.loglik == ref.loglik
+    assert len(est.e_groups) <= 3 and len(ref.e_groups) > 3
+    for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
+        a, na = impute_sum(mine, C)
+        b, nb = impute_sum(theirs, C)
+        assert na == nb
+        _close(a, b, 1e-12)
+        for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
+            _close(x, y, 1e-12)

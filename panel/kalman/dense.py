@@ -25,6 +25,7 @@ from scipy import linalg
 from scipy.linalg.blas import dtrsm
 from scipy.linalg.lapack import dpotrf
 
+from panel.kalman import impute
 from panel.kalman.types import EStep, MomentGroup, Smoothed
 
 LOG2PI = float(np.log(2.0 * np.pi))
@@ -43,7 +44,7 @@ def _sym(P: np.ndarray) -> np.ndarray:
 
 
 def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
-                   want_estep=True) -> Smoothed:
+                   want_estep=True, bounded=False) -> Smoothed:
     """Filter and smooth the premium panel on the dense path.
 
     Parameters
@@ -56,15 +57,27 @@ def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(
     Lambda : (N, k) loadings; when given, the common factors are carried in the state and reported.
     cov_at : date indices at which to return the full filtered and smoothed covariance of the premia.
     want_estep : also return the EM sufficient statistics.
+    bounded : for the E-step of a fit (no ``Lambda`` or ``cov_at``): memory O(sqrt(T) N^2 + T N)
+        instead of O(T N^2), the same numbers to rounding.  The covariances are kept every few
+        dates and recomputed block by block for the backward pass (:func:`dense_filter`'s
+        ``keep_every``; about one more forward pass), the EM moments are collapsed as they form
+        (:class:`panel.kalman.impute.Folding`: valid for imputation under this ``Sigma`` and ``H``
+        only), and the filtered and predicted report arrays are left out (None).
     """
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape
     s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
-    flt = dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda)
-    out = _report_arrays(T, N, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
+    if bounded:
+        if Lambda is not None or len(cov_at) or not want_estep:
+            raise ValueError("bounded=True is for the E-step only (no Lambda, no cov_at)")
+        flt = dense_filter(Y, Sigma, H, s2, init=init, keep_every=checkpoint_interval(T))
+        out = dict.fromkeys(("fm", "fv", "pm", "pv", "ffm", "ffv"))
+    else:
+        flt = dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda)
+        out = _report_arrays(T, N, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
     return _smooth(Y, ~np.isnan(Y), s2, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp,
                    flt.loglik, flt.innov, flt.innov_var, out, cov_at=set(cov_at),
-                   want_estep=want_estep)
+                   want_estep=want_estep, fold_under=(Sigma, H) if bounded else None)
 
 
 def joint_innovation_cov(Sigma, Lambda=None) -> np.ndarray:
@@ -245,9 +258,13 @@ class _FilterStep:
         return m, P, loglik
 
 
-def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None) -> Filtered:
+def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_every=None) -> Filtered:
     """Dense exact-diffuse filter over dates ``0..stop-1`` (all dates when ``stop`` is None); the
-    arguments are those of :func:`dense_smoother` with ``s2`` the (T,) squared scale."""
+    arguments are those of :func:`dense_smoother` with ``s2`` the (T,) squared scale.
+
+    ``keep_every = K`` keeps the covariances only every K dates (:class:`_Recomputed`): ``Pf`` and
+    ``Pp`` are then read-only sequences that rerun the filter a block at a time, with the same
+    numbers, so that a backward pass holds O(T / K + K) N x N matrices instead of 2 T."""
     T, N = Y.shape
     stop = T if stop is None else stop
     H = np.asarray(H, dtype=float)
@@ -262,23 +279,92 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None) -> Filte
     loglik = 0.0
     step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), k, Q, H,
                                                         init is not None))
+
+    def advance(t, m, P, prev, innov_row, innov_var_row):
+        """One date: (predicted P, step, filtered m, filtered P, log-likelihood term)."""
+        step = step_for(prev, obs[t])
+        if t > 0:
+            P = P + step.Q
+        m_new, P_new, ll = step.update(m, P, Y[t], s2[t], init, innov_row, innov_var_row)
+        return P, step, m_new, P_new, ll
+
+    def redo(t0, t1, m, P, prev):
+        """(Pf, Pp) lists of dates t0..t1-1 from the filtered state before t0."""
+        scratch = np.empty((2, N))
+        filtered, predicted = [], []
+        for t in range(t0, t1):
+            P_pred, step, m, P, _ = advance(t, m, P, prev, scratch[0], scratch[1])
+            prev = step.alive
+            predicted.append(P_pred)
+            filtered.append(P)
+        return filtered, predicted
+
+    ckpt = None
+    if keep_every is not None:
+        ckpt = _Recomputed(int(keep_every), stop, redo)
+        Pf, Pp = ckpt.filtered, ckpt.predicted
     prev = np.zeros(0, dtype=int)
     m = np.zeros(k)
     P = np.zeros((k, k))
     for t in range(stop):
-        step = step_for(prev, obs[t])
-        if t > 0:
-            P = P + step.Q
+        if ckpt is not None and t % ckpt.K == 0:
+            ckpt.starts.append((m, P, prev))
         mp.append(m)
-        Pp.append(P)
-        m, P, ll = step.update(m, P, Y[t], s2[t], init, innov[t], innov_var[t])
+        P_pred, step, m, P, ll = advance(t, m, P, prev, innov[t], innov_var[t])
         loglik += ll
         prev = step.alive
         alive.append(prev)
         mf.append(m)
-        Pf.append(P)
+        if ckpt is None:
+            Pp.append(P_pred)
+            Pf.append(P)
 
     return Filtered(k, Q, alive, mf, Pf, mp, Pp, loglik, innov, innov_var)
+
+
+def checkpoint_interval(T: int) -> int:
+    """Dates per block for :func:`dense_filter`'s ``keep_every``: about sqrt(T / 4), which
+    minimises the T / K checkpoints plus the 4 K matrices of the two blocks held."""
+    return max(1, round(np.sqrt(T / 4.0)))
+
+
+class _Recomputed:
+    """Filtered and predicted covariances of dates ``0..stop-1``, kept as the filter state before
+    every K-th date and recomputed a block of K dates at a time by ``redo(t0, t1, m, P, prev)``
+    (the same operations on the same inputs: the same numbers).  Holds the last two blocks read,
+    so a backward pass (which reads ``Pf[t-1]`` and ``Pp[t]`` across a block edge) reruns each
+    block once: about one more forward pass in all."""
+
+    def __init__(self, K, stop, redo):
+        self.K, self.stop, self._redo = K, stop, redo
+        self.starts = []                 # (m, P, alive) before dates 0, K, 2K, ...
+        self._blocks = {}
+        self.filtered, self.predicted = _BlockView(self, 0), _BlockView(self, 1)
+
+    def read(self, t, which):
+        if not 0 <= t < self.stop:
+            raise IndexError(t)
+        b = t // self.K
+        block = self._blocks.get(b)
+        if block is None:
+            if len(self._blocks) >= 2:
+                del self._blocks[max(self._blocks, key=lambda c: abs(c - b))]
+            t0 = b * self.K
+            block = self._blocks[b] = self._redo(t0, min(self.stop, t0 + self.K), *self.starts[b])
+        return block[which][t - b * self.K]
+
+
+class _BlockView:
+    """``view[t]``: one kind (0 filtered, 1 predicted) of a :class:`_Recomputed`'s covariances."""
+
+    def __init__(self, owner, which):
+        self._owner, self._which = owner, which
+
+    def __getitem__(self, t):
+        return self._owner.read(t, self._which)
+
+    def __len__(self):
+        return self._owner.stop
 
 
 def _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2):
@@ -323,6 +409,9 @@ class _MomentSum:
             if lag is not None:
                 self.lag += lag
 
+    def reset(self):
+        self.rows, self.cov, self.lag = [], None, None
+
     def group(self) -> MomentGroup:
         R = np.array(self.rows)
         M = R.T @ R + self.cov
@@ -332,10 +421,12 @@ class _MomentSum:
 
 
 def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep, cov_at, want_estep,
-            terminal=None):
+            terminal=None, fold_under=None):
     """RTS smoother over the filtered dates of ``Y`` (T, N).  ``terminal = (ms, Ps, mp, Pp, alive)``
     gives the smoothed and predicted state at date T (after the last filtered one, from a faster
-    path); the smoother then starts there, so the moments of ``w_T`` are included."""
+    path); the smoother then starts there, so the moments of ``w_T`` are included.
+    ``fold_under = (Sigma, H)``: beyond :data:`panel.kalman.impute.MAX_GROUPS` component sets,
+    the moments are collapsed as they form, imputed under ``Sigma`` (w) and ``H`` (eps)."""
     T, N = Y.shape
     scale = np.sqrt(s2)
     sm = np.full((T, N), np.nan)
@@ -344,6 +435,27 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
     fsv = np.zeros((T, k))
     w_sum, e_sum = {}, {}
     covs = {}
+    folds = {}                          # id of a sum dict -> [its Folding, number of live sums]
+    if fold_under is not None:
+        folds = {id(w_sum): [impute.Folding(fold_under[0]), 0],
+                 id(e_sum): [impute.Folding(fold_under[1]), 0]}
+
+    def add(sums, acc, *moment):
+        """``acc.add(*moment)``; folds ``sums`` once too many of its sums are live."""
+        fold = folds.get(id(sums))
+        if fold is not None and not acc.rows:
+            fold[1] += 1
+            if fold[1] > impute.MAX_GROUPS and not fold[0].failed:
+                live = [a for a in sums.values() if a.rows]
+                if fold[0].fold([a.group() for a in live]):
+                    for a in live:
+                        a.reset()
+                    fold[1] = 1
+        acc.add(*moment)
+
+    def groups(sums):
+        fold = folds.get(id(sums))
+        return [a.group() for a in sums.values() if a.rows] + (fold[0].done if fold else [])
 
     def moment_sum(sums, members):
         mask = np.zeros(N, bool)
@@ -377,7 +489,7 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
         if want_estep:
             O, po, acc = e_step(a, obs[t])
             if O.size:
-                acc.add((Y[t, O] - m[po]) / scale[t], _sub(P, po) / s2[t])
+                add(e_sum, acc, (Y[t, O] - m[po]) / scale[t], _sub(P, po) / s2[t])
         if t in cov_at:
             full_f = np.full((N, N), np.nan)
             full_s = np.full((N, N), np.nan)
@@ -404,14 +516,13 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
         K = Ps_pos @ J.T
         Ps_prev = _sym(Pf[t - 1] + J @ (K - Pf[t - 1]))
         if want_estep:                  # w_t = mu_t - mu_{t-1} over the previous date's assets
-            acc.add(ms_pos[k:] - ms_prev[k:], Ps_pos[k:, k:] + Ps_prev[k:, k:], K[k:, k:])
+            add(w_sum, acc, ms_pos[k:] - ms_prev[k:], Ps_pos[k:, k:] + Ps_prev[k:, k:], K[k:, k:])
         ms, Ps = ms_prev, Ps_prev
         record(t - 1, ms, Ps)
 
     estep = None
     if want_estep:
-        estep = EStep(loglik=loglik, w_groups=[g.group() for g in w_sum.values()],
-                      e_groups=[g.group() for g in e_sum.values()])
+        estep = EStep(loglik=loglik, w_groups=groups(w_sum), e_groups=groups(e_sum))
     return Smoothed(loglik=loglik, filtered_mean=rep["fm"], filtered_var=rep["fv"],
                     smoothed_mean=sm, smoothed_var=sv, predicted_mean=rep["pm"],
                     predicted_var=rep["pv"], innovation=innov, innovation_var=innov_var,

@@ -252,7 +252,7 @@ def collapse(groups: list[MomentGroup], C: np.ndarray, most: int | None = None) 
 
     Only valid for consumers that impute under this same ``C`` (the M-step and the score at the
     parameters of the E-step).  Left as they are when ``C`` cannot be used to impute (singular)."""
-    if len(groups) <= (MAX_GROUPS if most is None else most):
+    if len(groups) <= (MAX_GROUPS if most is None else most) or not groups:
         return groups
     try:
         total, n = impute_sum(groups, C)
@@ -260,3 +260,25 @@ def collapse(groups: list[MomentGroup], C: np.ndarray, most: int | None = None) 
         return groups
     N = C.shape[0]
     return [MomentGroup(np.ones(N, bool), n, total, seen=seen_diagonal(groups, N))]
+
+
+class Folding:
+    """Groups collapsed under ``C`` (N, N) while an E-step forms them, so that it never holds more
+    than about :data:`MAX_GROUPS` of them: the caller passes its live groups to :meth:`fold` once
+    there are too many, and drops them when it returns True; :attr:`done` holds the one collapsed
+    group so far (empty before the first fold).  If ``C`` cannot impute (singular), folding stops
+    and the caller keeps its groups (exact, unbounded)."""
+
+    def __init__(self, C: np.ndarray):
+        self.C, self.done, self.failed = np.asarray(C, dtype=float), [], False
+
+    def fold(self, groups: list[MomentGroup]) -> bool:
+        if self.failed:
+            return False
+        every = groups + self.done
+        out = collapse(every, self.C, most=0)
+        if out is every:
+            self.failed = True
+            return False
+        self.done = out
+        return True

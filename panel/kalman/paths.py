@@ -30,6 +30,8 @@ METHODS = ("auto", "dense", "stretch", "segments", "balanced")
 _DENSE_OVERHEAD = 2e5
 _DENSE_CUBE = 10.0
 _STRETCH_OVERHEAD = 5e5     # eigenproblems, transforms and the coupling solve, per E-step
+KEEP_ALL_BYTES = 2 ** 28    # a dense E-step keeps every date's covariances (16 T N^2 bytes) up to
+                            # this; beyond, it recomputes them in blocks (dense_smoother's bounded)
 
 
 def estimated_cost(Y, method: str, scale_varies: bool = False, init=None) -> float:
@@ -125,12 +127,16 @@ class Plan:
             try:
                 return segments.segment_estep(self.segments, Sigma, H, h_parts=h_parts)
             except np.linalg.LinAlgError:   # singular Sigma_OO with dormant assets: dense copes
-                return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init,
-                                      want_estep=True).estep
+                return self._dense_estep(Sigma, H)
         if self.data is None:
-            return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True).estep
+            return self._dense_estep(Sigma, H)
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,
                                 data=self.data, h_parts=h_parts).estep
+
+    def _dense_estep(self, Sigma, H) -> EStep:
+        T, N = self.Y.shape
+        return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
+                              bounded=16.0 * T * N * N > KEEP_ALL_BYTES).estep
 
     def report(self, Sigma, H, Lambda=None, cov_at=(), only_cov=False) -> Smoothed:
         """Per-date filtered/smoothed/predicted moments (factor paths when ``Lambda`` is given),
