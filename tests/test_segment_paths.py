@@ -9,9 +9,9 @@ fixed seeds."""
 import numpy as np
 import pytest
 
-from panel.kalman import bridge, paths, segments
+from panel.kalman import bridge, impute, paths, segments
 from panel.kalman.dense import dense_smoother
-from panel.model.mstep import impute_sum
+from panel.model.mstep import impute_sum, seen_diagonal
 
 T, N = 40, 6
 PATTERNS = ("balanced", "staircase", "exits", "gaps05", "gaps2", "block", "last", "mixed")
@@ -142,3 +142,26 @@ def test_segment_path_singular_premium_covariance_falls_back_exactly():
     with pytest.raises(np.linalg.LinAlgError):
         segments.segment_estep(plan.segments, Sigma, H)
     assert plan.estep(Sigma, H).loglik == pytest.approx(ref.loglik, rel=1e-8)
+
+
+@pytest.mark.parametrize("structure", ["diagonal", "factor", "full"])
+def test_segment_moments_collapsed_as_they_form(structure, monkeypatch):
+    """With more component sets than MAX_GROUPS the segment path folds its moments as they form
+    (imputed under Sigma and H): same imputed sums and seen diagonals as the dense reference."""
+    rng = np.random.default_rng(77)
+    Y = _panel(rng, "mixed")
+    Sigma, H, parts = _model(rng, structure)
+    ref = dense_smoother(Y, Sigma, H).estep
+    monkeypatch.setattr(impute, "MAX_GROUPS", 2)
+    plan = segments.SegmentPlan(Y, np.ones(T), None, by_cost=False)
+    assert plan.n_stretch >= 1 and len(ref.e_groups) > 3
+    est = segments.segment_estep(plan, Sigma, H, h_parts=parts)
+    assert est.loglik == pytest.approx(ref.loglik, rel=1e-10)
+    assert len(est.e_groups) <= 3
+    for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
+        a, na = impute_sum(mine, C)
+        b, nb = impute_sum(theirs, C)
+        assert na == nb
+        assert np.abs(a - b).max() < 1e-10 * max(1.0, np.abs(b).max())
+        for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
+            assert np.abs(x - y).max() < 1e-10 * max(1.0, np.abs(y).max())

@@ -31,7 +31,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg
 
-from panel.kalman import bridge, dense
+from panel.kalman import bridge, dense, impute
 from panel.kalman.dense import LOG2PI, _FilterStep, _memo, _solve_right_pd, _sym
 from panel.kalman.stretch import simultaneous_diagonalisation
 from panel.kalman.types import EStep, MomentGroup
@@ -143,27 +143,34 @@ class SegmentPlan:
 
 
 class _Moments:
-    """Moment sums keyed by component mask."""
+    """Moment sums keyed by component mask; beyond :data:`panel.kalman.impute.MAX_GROUPS` masks
+    they are collapsed as they form, imputed under ``C`` (the E-step's Sigma or H)."""
 
-    def __init__(self, N):
-        self.N, self.sums = N, {}
+    def __init__(self, N, C):
+        self.N, self.sums, self.folding = N, {}, impute.Folding(C)
 
     def add(self, members, count, M):
         key = np.asarray(members).tobytes()
         hit = self.sums.get(key)
         if hit is None:
+            if len(self.sums) >= impute.MAX_GROUPS and not self.folding.failed:
+                if self.folding.fold(self._live()):
+                    self.sums = {}
             self.sums[key] = [np.asarray(members), count, M]
         else:
             hit[1] += count
             hit[2] = hit[2] + M
 
-    def groups(self):
+    def _live(self):
         out = []
         for members, count, M in self.sums.values():
             mask = np.zeros(self.N, bool)
             mask[members] = True
             out.append(MomentGroup(mask, count, _sym(M)))
         return out
+
+    def groups(self):
+        return self._live() + self.folding.done
 
 
 def _joined(m, P, prev, A, init):
@@ -277,7 +284,9 @@ class _StretchSolve:
 
 def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None) -> EStep:
     """Log-likelihood and EM moments at ``(Sigma, H)`` on the segment path (same result as
-    :func:`panel.kalman.dense.dense_smoother`'s ``estep``, to rounding)."""
+    :func:`panel.kalman.dense.dense_smoother`'s ``estep``, to rounding; beyond
+    :data:`panel.kalman.impute.MAX_GROUPS` component sets the moments come collapsed under
+    ``Sigma`` and ``H``: :func:`panel.kalman.impute.collapse`)."""
     Sigma = np.asarray(Sigma, dtype=float)
     H = np.asarray(H, dtype=float)
     Y, obs, s2, init = plan.Y, plan.obs, plan.s2, plan.init
@@ -322,7 +331,7 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None) -> EStep:
             m, P = sol.end()
             prev = st.A
     # ---- backward
-    acc_w, acc_e = _Moments(N), _Moments(N)
+    acc_w, acc_e = _Moments(N, Sigma), _Moments(N, H)
     later = None                    # (smoothed, predicted) at the first date of the next segment
     for rec in reversed(recs):
         if rec[0] == "dense":
