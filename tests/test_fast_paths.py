@@ -314,3 +314,17 @@ def test_bounded_dense_estep_equals_unbounded(structure, pattern, monkeypatch):
         _close(a, b, 1e-12)
         for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
             _close(x, y, 1e-12)
+
+
+def test_filter_steps_kept_for_reuse_are_bounded(monkeypatch):
+    """Dropping cached filter steps (MAX_STEPS) rebuilds them: the same filter bit for bit."""
+    from panel.kalman import dense
+
+    rng = np.random.default_rng(8)
+    Y = _isolated_gaps(rng, 0.2)
+    _, Sigma, H = _model(rng, "full")
+    ref = dense_filter(Y, Sigma, H, np.ones(T))
+    monkeypatch.setattr(dense, "MAX_STEPS", 1)
+    got = dense_filter(Y, Sigma, H, np.ones(T), keep_every=4)
+    assert got.loglik == ref.loglik
+    assert all(np.array_equal(got.Pf[t], ref.Pf[t]) for t in range(T - 1, -1, -1))

@@ -29,6 +29,7 @@ from panel.kalman import impute
 from panel.kalman.types import EStep, MomentGroup, Smoothed
 
 LOG2PI = float(np.log(2.0 * np.pi))
+MAX_STEPS = 64      # filter steps (index work and blocks of H, one per pair of sets) kept for reuse
 
 
 def first_observations(Y: np.ndarray) -> np.ndarray:
@@ -137,14 +138,17 @@ def _sub(A: np.ndarray, rows, cols=None) -> np.ndarray:
     return A[rows][:, rows if cols is None else cols]
 
 
-def _memo(build):
-    """``build`` memoised on its arguments' bytes (index arrays and masks)."""
+def _memo(build, most=None):
+    """``build`` memoised on its arguments' bytes (index arrays and masks); with ``most``, only
+    the ``most`` latest results are kept (the oldest is dropped first)."""
     cache = {}
 
     def get(*args):
         key = tuple(a.tobytes() for a in args)
         hit = cache.get(key)
         if hit is None:
+            if most is not None and len(cache) >= most:
+                del cache[next(iter(cache))]
             hit = cache[key] = build(*args)
         return hit
     return get
@@ -277,8 +281,9 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
     innov = np.full((T, N), np.nan)
     innov_var = np.full((T, N), np.nan)
     loglik = 0.0
+    # a step holds blocks of H: with isolated gaps nearly every date has its own, so keep a few
     step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), k, Q, H,
-                                                        init is not None))
+                                                        init is not None), most=MAX_STEPS)
 
     def advance(t, m, P, prev, innov_row, innov_var_row):
         """One date: (predicted P, step, filtered m, filtered P, log-likelihood term)."""
@@ -302,7 +307,7 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
     ckpt = None
     if keep_every is not None:
         ckpt = _Recomputed(int(keep_every), stop, redo)
-        Pf, Pp = ckpt.filtered, ckpt.predicted
+        Pf, Pp = _BlockView(ckpt, 0), _BlockView(ckpt, 1)    # no cycle: freed with the views
     prev = np.zeros(0, dtype=int)
     m = np.zeros(k)
     P = np.zeros((k, k))
@@ -339,7 +344,6 @@ class _Recomputed:
         self.K, self.stop, self._redo = K, stop, redo
         self.starts = []                 # (m, P, alive) before dates 0, K, 2K, ...
         self._blocks = {}
-        self.filtered, self.predicted = _BlockView(self, 0), _BlockView(self, 1)
 
     def read(self, t, which):
         if not 0 <= t < self.stop:

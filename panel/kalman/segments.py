@@ -292,7 +292,7 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None) -> EStep:
     Y, obs, s2, init = plan.Y, plan.obs, plan.s2, plan.init
     T, N = Y.shape
     step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), 0, Sigma,
-                                                        H, init is not None))
+                                                        H, init is not None), most=dense.MAX_STEPS)
 
     @_memo
     def pencil_for(O):              # one eigenproblem per observed set, shared by its stretches
