@@ -328,3 +328,23 @@ def test_filter_steps_kept_for_reuse_are_bounded(monkeypatch):
     got = dense_filter(Y, Sigma, H, np.ones(T), keep_every=4)
     assert got.loglik == ref.loglik
     assert all(np.array_equal(got.Pf[t], ref.Pf[t]) for t in range(T - 1, -1, -1))
+
+
+@pytest.mark.parametrize("pattern", ["staircase", "gaps"])
+def test_bounded_stretch_estep_equals_unbounded(pattern, monkeypatch):
+    """stretch_smoother(bounded=True): the dense dates before the final stretch recomputed and
+    folded, the same E-step as without (loglik bit for bit, moments to rounding)."""
+    rng = np.random.default_rng(12)
+    Y = _panel(rng, pattern)
+    _, Sigma, H = _model(rng, "factor")
+    init = (0.02, 0.3)
+    assert 3 < final_stretch_start(Y) < T - 3
+    ref = stretch_smoother(Y, Sigma, H, init=init, want_report=False).estep
+    monkeypatch.setattr(impute, "MAX_GROUPS", 2)
+    est = stretch_smoother(Y, Sigma, H, init=init, want_report=False, bounded=True).estep
+    assert est.loglik == ref.loglik
+    assert len(est.e_groups) < len(ref.e_groups)
+    for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
+        _close(impute_sum(mine, C)[0], impute_sum(theirs, C)[0], 1e-12)
+        for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
+            _close(x, y, 1e-12)

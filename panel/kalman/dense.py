@@ -346,6 +346,7 @@ class _Recomputed:
         self._blocks = {}
 
     def read(self, t, which):
+        t = t + self.stop if t < 0 else t
         if not 0 <= t < self.stop:
             raise IndexError(t)
         b = t // self.K
@@ -356,6 +357,17 @@ class _Recomputed:
             t0 = b * self.K
             block = self._blocks[b] = self._redo(t0, min(self.stop, t0 + self.K), *self.starts[b])
         return block[which][t - b * self.K]
+
+
+class _Appended:
+    """``seq[t]`` for ``t < len(seq)``, then ``last``: one more item after a (read-only,
+    possibly recomputed) sequence, without copying it."""
+
+    def __init__(self, seq, last):
+        self._seq, self._last, self._n = seq, last, len(seq)
+
+    def __getitem__(self, t):
+        return self._last if t == self._n else self._seq[t]
 
 
 class _BlockView:
@@ -507,7 +519,7 @@ def _smooth(Y, obs, s2, k, alive, mf, Pf, mp, Pp, loglik, innov, innov_var, rep,
         last = T - 1
     else:
         ms, Ps, m_next, P_next, a_next = terminal
-        alive, mp, Pp = alive + [a_next], mp + [m_next], Pp + [P_next]
+        alive, mp, Pp = alive + [a_next], mp + [m_next], _Appended(Pp, P_next)
         last = T
     for t in range(last, 0, -1):
         pos, acc = w_step(alive[t - 1], alive[t])

@@ -242,6 +242,15 @@ def seen_diagonal(groups: list[MomentGroup], N: int) -> tuple[np.ndarray, np.nda
     return sums, counts
 
 
+def add_groups(a: MomentGroup, b: MomentGroup) -> MomentGroup:
+    """The sum of two groups with the same mask, keeping the seen part of a collapsed one."""
+    seen = None
+    if a.seen is not None or b.seen is not None:
+        N = a.mask.size
+        seen = tuple(x + y for x, y in zip(seen_diagonal([a], N), seen_diagonal([b], N)))
+    return MomentGroup(a.mask, a.count + b.count, a.M + b.M, seen=seen)
+
+
 MAX_GROUPS = 16         # more groups than this in an E-step result are collapsed (memory O(N^2))
 
 

@@ -131,12 +131,16 @@ class Plan:
         if self.data is None:
             return self._dense_estep(Sigma, H)
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,
-                                data=self.data, h_parts=h_parts).estep
+                                data=self.data, h_parts=h_parts,
+                                bounded=self._bounded(self.data.a)).estep
+
+    def _bounded(self, dense_dates: int) -> bool:
+        """Recompute the dense dates' covariances rather than keep them all (KEEP_ALL_BYTES)."""
+        return 16.0 * dense_dates * self.Y.shape[1] ** 2 > KEEP_ALL_BYTES
 
     def _dense_estep(self, Sigma, H) -> EStep:
-        T, N = self.Y.shape
         return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
-                              bounded=16.0 * T * N * N > KEEP_ALL_BYTES).estep
+                              bounded=self._bounded(self.Y.shape[0])).estep
 
     def report(self, Sigma, H, Lambda=None, cov_at=(), only_cov=False) -> Smoothed:
         """Per-date filtered/smoothed/predicted moments (factor paths when ``Lambda`` is given),

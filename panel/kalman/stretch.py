@@ -31,7 +31,7 @@ from __future__ import annotations
 import numpy as np
 from scipy import linalg
 
-from panel.kalman import dense
+from panel.kalman import dense, impute
 from panel.kalman.chain import basis_for, filter_chains, smooth_chains, spectral
 from panel.kalman.dense import LOG2PI, MomentGroup, _sym
 from panel.kalman.types import EStep, Smoothed
@@ -320,18 +320,19 @@ def _merge(*lists):
         for g in groups:
             key = g.mask.tobytes()
             if key in out:
-                out[key] = MomentGroup(g.mask, out[key].count + g.count, out[key].M + g.M)
+                out[key] = impute.add_groups(out[key], g)
             else:
                 out[key] = g
     return list(out.values())
 
 
-def _prior(Y, Sigma, H, s2, init, Lambda, a):
+def _prior(Y, Sigma, H, s2, init, Lambda, a, keep_every=None):
     """(dense head filter or None, prior at the stretch start or None)."""
     N = Y.shape[1]
     k = 0 if Lambda is None else Lambda.shape[1]
     if a > 0:
-        flt = dense.dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda, stop=a)
+        flt = dense.dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda, stop=a,
+                                 keep_every=keep_every)
         return flt, flt.predict()
     if init is None:
         return None, None
@@ -343,13 +344,15 @@ def _prior(Y, Sigma, H, s2, init, Lambda, a):
 
 def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
                      want_estep=True, want_report=True, data: StretchData | None = None,
-                     h_parts=None, only_cov=False) -> Smoothed:
+                     h_parts=None, only_cov=False, bounded=False) -> Smoothed:
     """Same contract and result as :func:`panel.kalman.dense.dense_smoother` (to rounding).
 
     ``data`` : the final stretch's :class:`StretchData` (built here when None; a fit builds it
     once); ``h_parts = (B, psi)`` when ``H = B B' + diag(psi)`` (cheaper eigenproblem, see
     :func:`simultaneous_diagonalisation`); ``want_report=False`` skips the per-date arrays of the
     stretch (E-step only); ``only_cov=True`` fills the stretch's per-date arrays at ``cov_at`` only.
+    ``bounded=True`` (with ``want_report=False``, no ``Lambda``): the dense dates before the stretch
+    run like :func:`panel.kalman.dense.dense_smoother`'s ``bounded`` (O(sqrt(T) N^2) memory).
     """
     Y = np.asarray(Y, dtype=float)
     Sigma = np.asarray(Sigma, dtype=float)
@@ -357,12 +360,14 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     T, N = Y.shape
     s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
     a = final_stretch_start(Y) if data is None else data.a
+    bounded = bounded and want_estep and not want_report and Lambda is None and not cov_at
     if a >= T:
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
-                                    want_estep=want_estep)
+                                    want_estep=want_estep, bounded=bounded)
     data = StretchData(Y, s2, a) if data is None else data
     cov_at = set(cov_at)
-    flt, prior = _prior(Y, Sigma, H, s2, init, Lambda, a)
+    keep = dense.checkpoint_interval(a) if bounded else None
+    flt, prior = _prior(Y, Sigma, H, s2, init, Lambda, a, keep_every=keep)
     try:
         tail = _Tail(data, Sigma, H, prior, Lambda, want_var=want_report, h_parts=h_parts)
     except linalg.LinAlgError:      # singular Sigma_OO with dormant assets or factors: dense copes
@@ -379,7 +384,8 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
         head = dense._smooth(Y[:a], ~np.isnan(Y[:a]), s2[:a], k, flt.alive, flt.mf, flt.Pf,
                              flt.mp, flt.Pp, flt.loglik, flt.innov[:a], flt.innov_var[:a], rep,
                              cov_at={t for t in cov_at if t < a}, want_estep=want_estep,
-                             terminal=(tail.m_star, tail.P_star, prior[0], prior[1], prior[2]))
+                             terminal=(tail.m_star, tail.P_star, prior[0], prior[1], prior[2]),
+                             fold_under=(Sigma, H) if bounded else None)
         if want_estep:
             w_groups = _merge(head.estep.w_groups, w_groups)
             e_groups = _merge(head.estep.e_groups, e_groups)
