@@ -77,14 +77,15 @@ def choose(Y, method: str, scale2=None, init=None) -> str:
 
 
 def memory_estimate(Y) -> float:
-    """Rough peak bytes of a fit on ``Y`` (T, N): per-date N x N covariances on the dates the dense
-    steps run (kept by the filter and by up to four E-step results during SQUAREM: ~4 per date),
-    about 30 N x N work arrays (eigenproblems, M-step, reporting) and ~20 (T, N) arrays.  Errs high
-    on segment paths (counts every date before the final stretch as dense)."""
+    """Rough peak bytes of a fit on ``Y`` (T, N): the final report keeps the filtered and
+    predicted N x N covariances of every date the dense steps run (an E-step result holds O(N^2),
+    and the E-step itself keeps them only up to KEEP_ALL_BYTES), about 30 N x N work arrays
+    (eigenproblems, M-step, reporting) and ~20 (T, N) arrays.  Errs high on segment paths (counts
+    every date before the final stretch as dense)."""
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape
     dense_dates = min(final_stretch_start(Y), T)
-    return 8.0 * (4.0 * dense_dates * N * N + 30.0 * N * N + 20.0 * T * N)
+    return 8.0 * (2.0 * dense_dates * N * N + 30.0 * N * N + 20.0 * T * N)
 
 
 class Plan:
