@@ -153,9 +153,9 @@ class _Moments:
         key = np.asarray(members).tobytes()
         hit = self.sums.get(key)
         if hit is None:
-            if len(self.sums) >= impute.MAX_GROUPS and not self.folding.failed:
-                if self.folding.fold(self._live()):
-                    self.sums = {}
+            full = len(self.sums) >= impute.MAX_GROUPS and not self.folding.failed
+            if full and self.folding.fold(self._live()):
+                self.sums = {}
             self.sums[key] = [np.asarray(members), count, M]
         else:
             hit[1] += count
