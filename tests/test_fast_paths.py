@@ -222,6 +222,18 @@ def _isolated_gaps(rng, rate=0.06):
     return Y
 
 
+def _same_imputed(est, ref, Sigma, H):
+    """Same imputed sums and counts under (Sigma, H) and same seen diagonals: all that the
+    M-step and the score read from an E-step's groups."""
+    for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
+        a, na = impute_sum(mine, C)
+        b, nb = impute_sum(theirs, C)
+        assert na == nb
+        _close(a, b, 1e-12)
+        for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
+            _close(x, y, 1e-12)
+
+
 @pytest.mark.parametrize("structure", ["diagonal", "factor", "full"])
 def test_collapsed_estep_keeps_imputed_moments_and_seen_diagonal(structure, monkeypatch):
     """A Plan's E-step on a panel with more observed sets than MAX_GROUPS returns one imputed
@@ -238,13 +250,7 @@ def test_collapsed_estep_keeps_imputed_moments_and_seen_diagonal(structure, monk
         assert est.loglik == pytest.approx(ref.loglik, rel=1e-12)
         assert len(est.e_groups) <= impute.MAX_GROUPS
         assert any(g.seen is not None and g.mask.all() for g in est.e_groups)     # collapsed
-        for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
-            a, na = impute_sum(mine, C)
-            b, nb = impute_sum(theirs, C)
-            assert na == nb
-            _close(a, b, 1e-12)
-            for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
-                _close(x, y, 1e-12)
+        _same_imputed(est, ref, Sigma, H)
 
 
 @pytest.mark.parametrize("structure", ["diagonal", "factor"])
@@ -307,13 +313,7 @@ def test_bounded_dense_estep_equals_unbounded(structure, pattern, monkeypatch):
     est = dense_smoother(Y, Sigma, H, s2, bounded=True).estep
     assert est.loglik == ref.loglik
     assert len(est.e_groups) <= 3 and len(ref.e_groups) > 3
-    for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
-        a, na = impute_sum(mine, C)
-        b, nb = impute_sum(theirs, C)
-        assert na == nb
-        _close(a, b, 1e-12)
-        for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
-            _close(x, y, 1e-12)
+    _same_imputed(est, ref, Sigma, H)
 
 
 def test_filter_steps_kept_for_reuse_are_bounded(monkeypatch):
@@ -344,7 +344,4 @@ def test_bounded_stretch_estep_equals_unbounded(pattern, monkeypatch):
     est = stretch_smoother(Y, Sigma, H, init=init, want_report=False, bounded=True).estep
     assert est.loglik == ref.loglik
     assert len(est.e_groups) < len(ref.e_groups)
-    for C, mine, theirs in ((Sigma, est.w_groups, ref.w_groups), (H, est.e_groups, ref.e_groups)):
-        _close(impute_sum(mine, C)[0], impute_sum(theirs, C)[0], 1e-12)
-        for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
-            _close(x, y, 1e-12)
+    _same_imputed(est, ref, Sigma, H)
