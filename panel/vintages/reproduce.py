@@ -25,18 +25,12 @@ import pandas as pd
 from panel.data import Panel
 from panel.model.result import PanelFit
 from panel.model.spec import ModelSpec
-from panel.store import (Store, StoreError, from_fit, get_run, run_environment, run_tables,
+from panel.store import (RESULT_ORDER, Store, StoreError, from_fit, get_run, run_environment, run_tables,
                          write_run)
 
-#: Result tables compared by :func:`reproduce`, keyed as ``run_tables`` returns them, with their keys.
-TABLE_KEYS = {
-    "estimates": ("date", "asset"),
-    "factors": ("factor", "date"),
-    "parameters": ("name", "row", "col"),
-    "trace": ("iteration",),
-    "diagnostics": ("asset", "statistic", "lags"),
-    "posterior_draws": ("draw", "name", "row", "col"),
-}
+#: Result tables compared by :func:`reproduce`, keyed as ``run_tables`` returns them, with their keys
+#: (the store's natural row order of each table).
+TABLE_KEYS = RESULT_ORDER
 #: Columns that measure time, not results: never compared.
 TIMING_COLUMNS = ("elapsed_s",)
 #: Scalar fit statistics of a run compared by :func:`reproduce`.
