@@ -52,6 +52,9 @@ QUICK = {"compare": [(6, 60, "balanced"), (6, 60, "staircase")],
 SECTIONS = ("compare", "scale", "ragged", "ragged_fit")
 #: Largest statsmodels smoother run (bytes of its per-date covariance arrays) in the ragged rows.
 SM_MEMORY = 12e9
+#: (T, N, N) float arrays statsmodels' smoother holds at once: measured 6.3 GB at N=100, T=1200,
+#: i.e. about 66 of them (not ten: the N=300 worker died of that estimate at 57 GB).
+SM_ARRAYS = 66
 
 
 def simulate(N: int, T: int, pattern: str, seed: int = 20240601):
@@ -226,8 +229,7 @@ def _ragged_task(task: dict) -> list:
         row = {"N": N, "T": T, "pattern": pattern, "method": plan.method, "estep_s": t,
                "vs_balanced": t / base, "missing_cells": int(np.isnan(Y).sum()),
                "sm_smoother_s": None, "smoother_ratio": None, "loglik_rel_diff": None}
-        # statsmodels keeps about ten (T, N, N) arrays: measured 6.3 GB at N=100, T=1200
-        if 10 * 8 * T * N * N <= SM_MEMORY:
+        if SM_ARRAYS * 8 * T * N * N <= SM_MEMORY:
             _statsmodels_smoother(Y[:3, :2], Sigma[:2, :2], H[:2, :2])
             sm_t, res = _best(lambda: _statsmodels_smoother(Y, Sigma, H), 1)
             row.update(sm_smoother_s=sm_t, smoother_ratio=sm_t / t,
@@ -245,6 +247,9 @@ def _spawn(task: dict, threads: int) -> dict:
         env[var] = str(threads)
     proc = subprocess.run([sys.executable, "-m", "panel.bench.fit", "--worker", json.dumps(task)],
                           env=env, capture_output=True, text=True)
+    if proc.returncode < 0:                 # killed by a signal: SIGKILL is the kernel's OOM killer
+        return {**task, "error": f"worker killed by signal {-proc.returncode}"
+                                 + (" (out of memory?)" if proc.returncode == -9 else "")}
     if proc.returncode != 0:
         return {**task, "error": proc.stderr.strip().splitlines()[-1] if proc.stderr else "failed"}
     return json.loads(proc.stdout.strip().splitlines()[-1])
@@ -310,6 +315,10 @@ def format_table(res: dict) -> str:
         lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['estep_s']:>9.4f} "
                      f"{r['report_s']:>9.3f} {r['fit_s']:>9.2f} {r['fit_esteps']:>8d} "
                      f"{r['fit_status']:<12} {r['fit_loglik']:>14.4f} {r['peak_rss_mb']:>10.0f}")
+    counts = [r["fit_esteps"] for r in res["compare"] + res["scale"] + res.get("ragged_fit", [])
+              if "error" not in r]
+    if counts:
+        lines.append(f"median E-steps per fit over these {len(counts)} fits: {np.median(counts):.0f}")
     if res.get("ragged"):
         lines += ["(d) ragged E-steps (auto path) vs our balanced E-step and statsmodels' smoother, "
                   "one process per N",

@@ -1,0 +1,32 @@
+"""The active-set finish's stopping rule: its estimate of the gain still to be had."""
+
+import numpy as np
+
+from panel.model.em import _Curvature
+
+
+def test_remaining_gain_is_exact_on_a_quadratic_after_conjugate_steps():
+    # Source: Nocedal & Wright (2006), Numerical Optimization, 2nd ed., ch. 6 (quadratic
+    # termination): on a quadratic with Hessian A, BFGS from steps that are A-conjugate recovers
+    # A^{-1} exactly, so g' B^{-1} g / 2 is the exact gain of the Newton step, max f - f(x).
+    rng = np.random.default_rng(3)
+    n = 6
+    Q, _ = np.linalg.qr(rng.normal(size=(n, n)))
+    A = Q @ np.diag(np.logspace(-2, 3, n)) @ Q.T           # curvatures spanning five decades
+    x_star = rng.normal(size=n)
+    grad = lambda x: -A @ (x - x_star)                       # ascent gradient of f = -(x-x*)'A(x-x*)/2
+    curv = _Curvature(most=10)
+    x = np.zeros(n)
+    curv.add(x, grad(x))
+    for j in range(n):                                      # eigenvectors of A are A-conjugate
+        x = x + Q[:, j] * rng.uniform(0.5, 2.0)
+        curv.add(x, grad(x))
+    g = grad(x)
+    exact = 0.5 * g @ np.linalg.solve(A, g)
+    assert abs(curv.remaining_gain(g) / exact - 1) < 1e-10
+
+
+def test_remaining_gain_is_infinite_before_any_curvature_is_seen():
+    curv = _Curvature(most=5)
+    curv.add(np.zeros(3), np.ones(3))
+    assert curv.remaining_gain(np.ones(3)) == np.inf
