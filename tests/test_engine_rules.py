@@ -292,6 +292,26 @@ def test_settings_stored_without_loglik_tol_keep_the_legacy_finish():
     assert panel.ModelSpec.from_dict(stored).loglik_tol is None
 
 
+def test_settings_stored_without_stopping_keep_the_gradient_rule():
+    # Runs stored before the gain-model rule must reproduce exactly: their settings read as
+    # "gradient".  Simulation (invented panel): the gain-model rule stops sooner at the same
+    # optimum (loglik_tol = 1e-4 apart at most).
+    from panel.bench.fit import simulate
+
+    stored = panel.ModelSpec().to_dict()
+    assert stored["stopping"] == "gain-model"
+    del stored["stopping"]
+    legacy_spec = panel.ModelSpec.from_dict(stored)
+    assert legacy_spec.stopping == "gradient"
+    frame, _, _ = simulate(8, 240, "balanced")
+    legacy = panel.fit(frame, legacy_spec)
+    new = panel.fit(frame, panel.ModelSpec())
+    assert new.n_iter < legacy.n_iter
+    assert abs(new.loglik - legacy.loglik) < 1e-4
+    with pytest.raises(panel.SpecError, match="stopping must be one of"):
+        panel.fit(frame, panel.ModelSpec(stopping="sometimes"))
+
+
 def test_variance_started_at_its_floor_is_released_by_its_score():
     # Simulation (invented panel from the model): a warm start with the largest own premium
     # variance pushed below its floor.  EM cannot lift a variance off zero and in the finish's

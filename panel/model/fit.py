@@ -90,7 +90,8 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
         if spec.loglik_tol is not None:     # the score at the optimum is free: forward differences
             forward = {"base": ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior,
                                                                 prob.h_prior),
-                       "rel_step": inference.FORWARD_STEP}
+                       "rel_step": inference.FORWARD_STEP,
+                       "central_fallback": spec.stopping != "gradient"}
         se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure,
                                                 at_bound=prob.packer.packed_variances(q_bound, psi_bound),
                                                 **forward)
@@ -111,7 +112,7 @@ def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
         prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
         max_iter=spec.max_iter, time_budget=spec.time_budget,
         accelerate=spec.acceleration != "none", progress=progress, loglik_tol=spec.loglik_tol,
-        **_quasi_newton_setup(prob, floor))
+        stopping=spec.stopping, **_quasi_newton_setup(prob, floor))
 
 
 def check_estimable(Y: np.ndarray, assets, rs) -> None:

@@ -96,14 +96,15 @@ def parameter_rows(assets, k: int, r: int, structure: str) -> list[tuple[str, st
 
 
 def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=None, base=None,
-                    rel_step: float = 1e-4):
+                    rel_step: float = 1e-4, central_fallback: bool = True):
     """(reported SEs or None, message).  ``score(theta)`` evaluates the Fisher-identity score;
     ``base`` (packed, optional) is the score at ``p``: then the information is differenced forwards
     (:func:`observed_information`), one E-step per free parameter instead of two.
 
     ``at_bound`` (packed mask) marks parameters sitting at a bound: the usual asymptotics do not
     hold there, so they are held fixed (zero variance) for the others' information and their own
-    reported rows get no standard error (NaN)."""
+    reported rows get no standard error (NaN).  ``central_fallback=False`` keeps a forward-differenced
+    information that is not positive definite (runs stored before the fallback existed)."""
     theta = packer.pack(p)
     scale = packer.step_scale(p)
     inner = np.ones(theta.size, bool) if at_bound is None else ~np.asarray(at_bound, bool)
@@ -116,7 +117,8 @@ def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=N
         return score(full)[inner]
 
     cov_inner = _inverse_information(theta[inner], inner_score, scale[inner], rel_step,
-                                     None if base is None else np.asarray(base)[inner])
+                                     None if base is None else np.asarray(base)[inner],
+                                     central_fallback)
     if cov_inner is None:
         return None, "observed information is singular: no standard errors"
     if not np.all(np.diag(cov_inner) > 0):
@@ -133,12 +135,12 @@ def standard_errors(p: Params, packer: Packer, score, structure: str, at_bound=N
     return se, ""
 
 
-def _inverse_information(theta, score, scale, rel_step, base):
+def _inverse_information(theta, score, scale, rel_step, base, central_fallback=True):
     """Inverse observed information, or None if singular.  Forward differences (``base`` given)
     that are not positive definite are redone by central differences: near a boundary one score
     can bend within the forward step (measured on a simulated 30-asset panel: a loading of 8e-6
     got a diagonal of -2e7 forwards, a positive one centrally)."""
-    for attempt in (base, None) if base is not None else (None,):
+    for attempt in (base, None) if base is not None and central_fallback else (base,):
         step = rel_step if attempt is not None else max(rel_step, CENTRAL_STEP)
         info = observed_information(theta, score, scale, step, attempt)
         try:

@@ -199,9 +199,11 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
                                 + ("from the data" if priors["return_vol"] is None
                                    else f"{100 * priors['return_vol']:g}% a year")))
         return lines
+    finish = ("" if spec.acceleration != "quasi-newton" else ", legacy finish"
+              if spec.loglik_tol is None else f", finish to {spec.loglik_tol:g} log-lik ({spec.stopping})")
     lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
-                                f"{spec.tol:g}/{spec.param_tol:g}, {spec.starts} start(s), std errors "
-                                f"{spec.std_errors}, path {spec.method}"))
+                                f"{spec.tol:g}/{spec.param_tol:g}{finish}, {spec.starts} start(s), std "
+                                f"errors {spec.std_errors}, path {spec.method}"))
     return lines
 
 
