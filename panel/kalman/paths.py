@@ -98,8 +98,8 @@ def memory_estimate(Y, method: str = "auto", scale2=None, init=None) -> float:
     the larger of the E-steps' and the final report's per-date covariances — a dense pass over
     the dense path's T dates, or the stretch path's dates before its final stretch, holds
     :func:`dense_kept_bytes` (O(T N^2) up to KEEP_ALL_BYTES, O(sqrt(T) N^2) beyond); the segment
-    path's E-step keeps two N x N matrices per dense date and about ten per stretch (its report
-    takes the stretch path) — plus the filter steps kept for reuse (``MAX_STEPS``, a block of H
+    path's E-step likewise for its forward records (:func:`panel.kalman.segments.dense_equivalent`
+    dates; its report takes the stretch path) — plus the filter steps kept for reuse (``MAX_STEPS``, a block of H
     each), about 40 N x N work arrays (eigenproblems, moment groups, M-step) and ~20 (T, N)
     arrays (data, report, estimates table).  An E-step result holds O(N^2)."""
     Y = np.asarray(Y, dtype=float)
@@ -107,9 +107,7 @@ def memory_estimate(Y, method: str = "auto", scale2=None, init=None) -> float:
     path = choose(Y, method, scale2, init)
     kept = dense_kept_bytes(T if path == "dense" else min(final_stretch_start(Y), T), N)
     if path == "segments":
-        segs = segments.layout(Y, init)
-        n_dense = sum(seg[0] == "dense" for seg in segs)
-        kept = max(kept, 8.0 * N * N * (2.0 * n_dense + 10.0 * (len(segs) - n_dense)))
+        kept = max(kept, dense_kept_bytes(segments.dense_equivalent(segments.layout(Y, init)), N))
     return kept + 8.0 * ((MAX_STEPS + 40.0) * N * N + 20.0 * T * N)
 
 
@@ -151,7 +149,9 @@ class Plan:
     def _estep(self, Sigma, H, h_parts) -> EStep:
         if self.segments is not None:
             try:
-                return segments.segment_estep(self.segments, Sigma, H, h_parts=h_parts)
+                return segments.segment_estep(
+                    self.segments, Sigma, H, h_parts=h_parts,
+                    bounded=self._bounded(segments.dense_equivalent(self.segments.segments)))
             except np.linalg.LinAlgError:   # singular Sigma_OO with dormant assets: dense copes
                 return self._dense_estep(Sigma, H)
         if self.data is None:
