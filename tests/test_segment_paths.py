@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 
 from panel.kalman import bridge, impute, paths, segments
+from panel.kalman.checkpoints import checkpoint_interval
 from panel.kalman.dense import dense_smoother
 from panel.model.mstep import impute_sum, seen_diagonal
 
@@ -165,3 +166,25 @@ def test_segment_moments_collapsed_as_they_form(structure, monkeypatch):
         assert np.abs(a - b).max() < 1e-10 * max(1.0, np.abs(b).max())
         for x, y in zip(seen_diagonal(mine, N), seen_diagonal(theirs, N)):
             assert np.abs(x - y).max() < 1e-10 * max(1.0, np.abs(y).max())
+
+
+@pytest.mark.parametrize("pattern", ["mixed", "gaps2", "block"])
+@pytest.mark.parametrize("scaled,informative", [(False, False), (True, True)])
+def test_bounded_segment_estep_equals_unbounded(pattern, scaled, informative):
+    """segment_estep(bounded=True) keeps the forward records only every few segments and
+    recomputes them in blocks: the same E-step bit for bit (log-likelihood, groups, sums)."""
+    rng = np.random.default_rng(31)
+    Y = _panel(rng, pattern)
+    Sigma, H, parts = _model(rng, "factor")
+    s2 = rng.uniform(0.5, 2.0, T) if scaled else np.ones(T)
+    init = (0.02, 0.3) if informative else None
+    plan = segments.SegmentPlan(Y, s2, init, by_cost=False)
+    n_seg = len(plan.segments)
+    assert plan.n_stretch >= 1 and n_seg >= 3 * checkpoint_interval(n_seg)   # several blocks
+    ref = segments.segment_estep(plan, Sigma, H, h_parts=parts)
+    got = segments.segment_estep(plan, Sigma, H, h_parts=parts, bounded=True)
+    assert got.loglik == ref.loglik
+    for mine, theirs in ((got.w_groups, ref.w_groups), (got.e_groups, ref.e_groups)):
+        assert len(mine) == len(theirs)
+        for a, b in zip(mine, theirs):
+            assert np.array_equal(a.mask, b.mask) and a.count == b.count and np.array_equal(a.M, b.M)

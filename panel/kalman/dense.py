@@ -26,6 +26,7 @@ from scipy.linalg.blas import dtrsm
 from scipy.linalg.lapack import dpotrf
 
 from panel.kalman import impute
+from panel.kalman.checkpoints import BlockView, Recomputed, checkpoint_interval
 from panel.kalman.types import EStep, MomentGroup, Smoothed
 
 LOG2PI = float(np.log(2.0 * np.pi))
@@ -58,27 +59,22 @@ def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(
     Lambda : (N, k) loadings; when given, the common factors are carried in the state and reported.
     cov_at : date indices at which to return the full filtered and smoothed covariance of the premia.
     want_estep : also return the EM sufficient statistics.
-    bounded : for the E-step of a fit (no ``Lambda`` or ``cov_at``): memory O(sqrt(T) N^2 + T N)
-        instead of O(T N^2), the same numbers to rounding.  The covariances are kept every few
-        dates and recomputed block by block for the backward pass (:func:`dense_filter`'s
-        ``keep_every``; about one more forward pass), the EM moments are collapsed as they form
+    bounded : memory O(sqrt(T) (k+N)^2 + T (k+N)) instead of O(T (k+N)^2), the same numbers (bit
+        for bit, the EM moments to rounding).  The covariances are kept every few dates and
+        recomputed block by block for the backward pass (:func:`dense_filter`'s ``keep_every``;
+        about one more forward pass); the E-step's moments are collapsed as they form
         (:class:`panel.kalman.impute.Folding`: valid for imputation under this ``Sigma`` and ``H``
-        only), and the filtered and predicted report arrays are left out (None).
+        only).  A fit's E-steps and its final report set it beyond
+        :data:`panel.kalman.paths.KEEP_ALL_BYTES`.
     """
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape
     s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
-    if bounded:
-        if Lambda is not None or len(cov_at) or not want_estep:
-            raise ValueError("bounded=True is for the E-step only (no Lambda, no cov_at)")
-        flt = dense_filter(Y, Sigma, H, s2, init=init, keep_every=checkpoint_interval(T))
-        out = dict.fromkeys(("fm", "fv", "pm", "pv", "ffm", "ffv"))
-    else:
-        flt = dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda)
-        out = _report_arrays(T, N, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
+    flt = dense_filter(Y, Sigma, H, s2, init=init, Lambda=Lambda,
+                       keep_every=checkpoint_interval(T) if bounded else None)
     return _smooth(Y, ~np.isnan(Y), s2, flt.k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp,
-                   flt.loglik, flt.innov, flt.innov_var, out, cov_at=set(cov_at),
-                   want_estep=want_estep, fold_under=(Sigma, H) if bounded else None)
+                   flt.loglik, flt.innov, flt.innov_var, flt.report_arrays(N), cov_at=set(cov_at),
+                   want_estep=want_estep, fold_under=(Sigma, H) if bounded and want_estep else None)
 
 
 def joint_innovation_cov(Sigma, Lambda=None) -> np.ndarray:
@@ -167,7 +163,8 @@ def _bordered(P: np.ndarray, D: np.ndarray) -> np.ndarray:
 @dataclass
 class Filtered:
     """Dense filter output for dates ``0..stop-1``: per-date active assets, filtered and predicted
-    state moments (state ``(f, mu[alive])``), log-likelihood and innovations; ``Q`` the joint
+    state moments (state ``(f, mu[alive])``; ``Pf``, ``Pp`` possibly recomputed on reading, their
+    diagonals ``vf``, ``vp`` always kept), log-likelihood and innovations; ``Q`` the joint
     innovation covariance."""
 
     k: int
@@ -177,9 +174,29 @@ class Filtered:
     Pf: list
     mp: list
     Pp: list
+    vf: list
+    vp: list
     loglik: float
     innov: np.ndarray
     innov_var: np.ndarray
+
+    def report_arrays(self, N: int) -> dict:
+        """Filtered and predicted means and variances as (stop, N) arrays (NaN where not active)
+        and the factors' as (stop, k), from the kept means and diagonals (no covariance read)."""
+        T, k = len(self.alive), self.k
+        fm, fv, pm, pv = (np.full((T, N), np.nan) for _ in range(4))
+        ffm, ffv = np.zeros((T, k)), np.zeros((T, k))
+        for t in range(T):
+            a = self.alive[t]
+            fm[t, a] = self.mf[t][k:]
+            fv[t, a] = self.vf[t][k:]
+            ffm[t] = self.mf[t][:k]
+            ffv[t] = self.vf[t][:k]
+            if t > 0:
+                b = self.alive[t - 1]
+                pm[t, b] = self.mp[t][k:]
+                pv[t, b] = self.vp[t][k:]
+        return {"fm": fm, "fv": fv, "pm": pm, "pv": pv, "ffm": ffm, "ffv": ffv}
 
     def predict(self):
         """(mean, cov, assets) of the state predicted for date ``stop`` from the last filtered one."""
@@ -266,7 +283,7 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
     """Dense exact-diffuse filter over dates ``0..stop-1`` (all dates when ``stop`` is None); the
     arguments are those of :func:`dense_smoother` with ``s2`` the (T,) squared scale.
 
-    ``keep_every = K`` keeps the covariances only every K dates (:class:`_Recomputed`): ``Pf`` and
+    ``keep_every = K`` keeps the covariances only every K dates (:class:`Recomputed`): ``Pf`` and
     ``Pp`` are then read-only sequences that rerun the filter a block at a time, with the same
     numbers, so that a backward pass holds O(T / K + K) N x N matrices instead of 2 T."""
     T, N = Y.shape
@@ -277,7 +294,7 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
     first_observations(Y)                                     # every asset is observed once
     Q = joint_innovation_cov(np.asarray(Sigma, dtype=float), Lambda)
 
-    alive, mf, Pf, mp, Pp = [], [], [], [], []
+    alive, mf, Pf, mp, Pp, vf, vp = [], [], [], [], [], [], []
     innov = np.full((T, N), np.nan)
     innov_var = np.full((T, N), np.nan)
     loglik = 0.0
@@ -306,8 +323,8 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
 
     ckpt = None
     if keep_every is not None:
-        ckpt = _Recomputed(int(keep_every), stop, redo)
-        Pf, Pp = _BlockView(ckpt, 0), _BlockView(ckpt, 1)    # no cycle: freed with the views
+        ckpt = Recomputed(int(keep_every), stop, redo)
+        Pf, Pp = BlockView(ckpt, 0), BlockView(ckpt, 1)      # no cycle: freed with the views
     prev = np.zeros(0, dtype=int)
     m = np.zeros(k)
     P = np.zeros((k, k))
@@ -320,43 +337,13 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
         prev = step.alive
         alive.append(prev)
         mf.append(m)
+        vp.append(P_pred.diagonal().copy())                  # copies: views would keep P alive
+        vf.append(P.diagonal().copy())
         if ckpt is None:
             Pp.append(P_pred)
             Pf.append(P)
 
-    return Filtered(k, Q, alive, mf, Pf, mp, Pp, loglik, innov, innov_var)
-
-
-def checkpoint_interval(T: int) -> int:
-    """Dates per block for :func:`dense_filter`'s ``keep_every``: about sqrt(T / 4), which
-    minimises the T / K checkpoints plus the 4 K matrices of the two blocks held."""
-    return max(1, round(np.sqrt(T / 4.0)))
-
-
-class _Recomputed:
-    """Filtered and predicted covariances of dates ``0..stop-1``, kept as the filter state before
-    every K-th date and recomputed a block of K dates at a time by ``redo(t0, t1, m, P, prev)``
-    (the same operations on the same inputs: the same numbers).  Holds the last two blocks read,
-    so a backward pass (which reads ``Pf[t-1]`` and ``Pp[t]`` across a block edge) reruns each
-    block once: about one more forward pass in all."""
-
-    def __init__(self, K, stop, redo):
-        self.K, self.stop, self._redo = K, stop, redo
-        self.starts = []                 # (m, P, alive) before dates 0, K, 2K, ...
-        self._blocks = {}
-
-    def read(self, t, which):
-        t = t + self.stop if t < 0 else t
-        if not 0 <= t < self.stop:
-            raise IndexError(t)
-        b = t // self.K
-        block = self._blocks.get(b)
-        if block is None:
-            if len(self._blocks) >= 2:
-                del self._blocks[max(self._blocks, key=lambda c: abs(c - b))]
-            t0 = b * self.K
-            block = self._blocks[b] = self._redo(t0, min(self.stop, t0 + self.K), *self.starts[b])
-        return block[which][t - b * self.K]
+    return Filtered(k, Q, alive, mf, Pf, mp, Pp, vf, vp, loglik, innov, innov_var)
 
 
 class _Appended:
@@ -368,42 +355,6 @@ class _Appended:
 
     def __getitem__(self, t):
         return self._last if t == self._n else self._seq[t]
-
-
-class _BlockView:
-    """``view[t]``: one kind (0 filtered, 1 predicted) of a :class:`_Recomputed`'s covariances."""
-
-    def __init__(self, owner, which):
-        self._owner, self._which = owner, which
-
-    def __getitem__(self, t):
-        return self._owner.read(t, self._which)
-
-    def __len__(self):
-        return self._owner.stop
-
-
-def _report_arrays(T, N, k, alive, mf, Pf, mp, Pp, H, s2):
-    """Filtered and predicted means and variances as (T, N) arrays (NaN where not active) and the
-    factors' as (T, k)."""
-    fm = np.full((T, N), np.nan)
-    fv = np.full((T, N), np.nan)
-    pm = np.full((T, N), np.nan)
-    pv = np.full((T, N), np.nan)
-    ffm = np.zeros((T, k))
-    ffv = np.zeros((T, k))
-    for t in range(T):
-        a = alive[t]
-        d = Pf[t].diagonal()
-        fm[t, a] = mf[t][k:]
-        fv[t, a] = d[k:]
-        ffm[t] = mf[t][:k]
-        ffv[t] = d[:k]
-        if t > 0:
-            b = alive[t - 1]
-            pm[t, b] = mp[t][k:]
-            pv[t, b] = Pp[t].diagonal()[k:]
-    return {"fm": fm, "fv": fv, "pm": pm, "pv": pv, "ffm": ffm, "ffv": ffv}
 
 
 # ---------------------------------------------------------------- smoother

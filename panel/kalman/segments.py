@@ -32,6 +32,7 @@ import numpy as np
 from scipy import linalg
 
 from panel.kalman import bridge, dense, impute
+from panel.kalman.checkpoints import BlockView, Recomputed, checkpoint_interval
 from panel.kalman.dense import LOG2PI, _FilterStep, _memo, _solve_right_pd, _sym
 from panel.kalman.stretch import simultaneous_diagonalisation
 from panel.kalman.types import EStep, MomentGroup
@@ -103,6 +104,15 @@ def layout(Y, init=None, by_cost: bool = True):
         else:
             out.extend(("dense", t) for t in range(first, stop))
     return out
+
+
+def dense_equivalent(segs) -> int:
+    """Dense dates whose filtered and predicted covariances weigh what the forward records of the
+    segments ``segs`` (:func:`layout` or :attr:`SegmentPlan.segments`) hold: two N x N matrices
+    per dense date, about ten per stretch (its joint 2n x 2n end covariance, the predicted state,
+    the dormant assets' blocks)."""
+    n_stretch = sum(seg[0] == "stretch" for seg in segs)
+    return len(segs) + 4 * n_stretch
 
 
 def layout_cost(segs, n_active) -> float:
@@ -282,11 +292,15 @@ class _StretchSolve:
         return ms_a, Ps_a
 
 
-def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None) -> EStep:
+def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = False) -> EStep:
     """Log-likelihood and EM moments at ``(Sigma, H)`` on the segment path (same result as
     :func:`panel.kalman.dense.dense_smoother`'s ``estep``, to rounding; beyond
     :data:`panel.kalman.impute.MAX_GROUPS` component sets the moments come collapsed under
-    ``Sigma`` and ``H``: :func:`panel.kalman.impute.collapse`)."""
+    ``Sigma`` and ``H``: :func:`panel.kalman.impute.collapse`).
+
+    ``bounded``: keep the forward pass's records (covariances, stretch solutions) only every
+    ~sqrt(n / 4) of the n segments and recompute a block at a time for the backward pass
+    (:mod:`panel.kalman.checkpoints`; the same numbers bit for bit, about one more forward pass)."""
     Sigma = np.asarray(Sigma, dtype=float)
     H = np.asarray(H, dtype=float)
     Y, obs, s2, init = plan.Y, plan.obs, plan.s2, plan.init
@@ -294,46 +308,62 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None) -> EStep:
     step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), 0, Sigma,
                                                         H, init is not None), most=dense.MAX_STEPS)
 
-    @_memo
-    def pencil_for(O):              # one eigenproblem per observed set, shared by its stretches
+    def pencil(O):                  # one eigenproblem per observed set, shared by its stretches
         parts = None if h_parts is None else (h_parts[0][O], h_parts[1][O])
         d, V, W, logdet_v = simultaneous_diagonalisation(Sigma[np.ix_(O, O)], H[np.ix_(O, O)],
                                                          parts)
         return np.maximum(d, 0.0), V, W, logdet_v
+    pencil_for = _memo(pencil, most=dense.MAX_STEPS)       # recomputed alike: the same numbers
     scratch = np.empty((2, N))
-    prev = np.zeros(0, dtype=int)
-    m, P = np.zeros(0), np.zeros((0, 0))
-    loglik = 0.0
-    recs = []
+
+    def forward(i0, i1, m, P, prev, loglik=0.0):
+        """Records of segments i0..i1-1 from the filtered state ``(m, P)`` over ``prev`` before
+        them; returns (records, state after them, ``loglik`` plus theirs)."""
+        recs = []
+        for kind, item in plan.segments[i0:i1]:
+            if kind == "dense":
+                t = item
+                step = step_for(prev, obs[t])
+                if t > 0:
+                    P = P + step.Q
+                mp, Pp = m, P
+                m, P, ll = step.update(m, P, Y[t], s2[t], init, scratch[0], scratch[1])
+                loglik += ll
+                recs.append(("dense", t, prev, step.alive, mp, Pp, m, P))
+                prev = step.alive
+            else:
+                st = item
+                if st.a > 0:
+                    P = P + Sigma[np.ix_(prev, prev)]
+                mp, Pp = m, P
+                prior = None
+                if st.a > 0 or init is not None:
+                    prior = _joined(m, P, prev, st.A, init)
+                sol = _StretchSolve(st, Sigma, prior, pencil_for(st.O))
+                loglik += sol.loglik
+                recs.append(("stretch", sol, prev, st.A, mp, Pp))
+                m, P = sol.end()
+                prev = st.A
+        return recs, (m, P, prev), loglik
+
     # ---- forward
-    for kind, item in plan.segments:
-        if kind == "dense":
-            t = item
-            step = step_for(prev, obs[t])
-            if t > 0:
-                P = P + step.Q
-            mp, Pp = m, P
-            m, P, ll = step.update(m, P, Y[t], s2[t], init, scratch[0], scratch[1])
-            loglik += ll
-            recs.append(("dense", t, prev, step.alive, mp, Pp, m, P))
-            prev = step.alive
-        else:
-            st = item
-            if st.a > 0:
-                P = P + Sigma[np.ix_(prev, prev)]
-            mp, Pp = m, P
-            prior = None
-            if st.a > 0 or init is not None:
-                prior = _joined(m, P, prev, st.A, init)
-            sol = _StretchSolve(st, Sigma, prior, pencil_for(st.O))
-            loglik += sol.loglik
-            recs.append(("stretch", sol, prev, st.A, mp, Pp))
-            m, P = sol.end()
-            prev = st.A
+    n_seg = len(plan.segments)
+    state = (np.zeros(0), np.zeros((0, 0)), np.zeros(0, dtype=int))
+    if bounded:
+        keep = Recomputed(checkpoint_interval(n_seg), n_seg,
+                          lambda i0, i1, m, P, prev: (forward(i0, i1, m, P, prev)[0],))
+        loglik = 0.0
+        for i0 in range(0, n_seg, keep.K):
+            keep.starts.append(state)
+            _, state, loglik = forward(i0, min(n_seg, i0 + keep.K), *state, loglik)
+        recs = BlockView(keep, 0)
+    else:
+        recs, _, loglik = forward(0, n_seg, *state)
     # ---- backward
     acc_w, acc_e = _Moments(N, Sigma), _Moments(N, H)
     later = None                    # (smoothed, predicted) at the first date of the next segment
-    for rec in reversed(recs):
+    for i in range(n_seg - 1, -1, -1):
+        rec = recs[i]
         if rec[0] == "dense":
             _, t, before, alive, mp, Pp, mf, Pf = rec
             ms, Ps = (mf, Pf) if later is None else _rts(mf, Pf, alive, later, acc_w)

@@ -32,6 +32,7 @@ import numpy as np
 from scipy import linalg
 
 from panel.kalman import dense, impute
+from panel.kalman.checkpoints import checkpoint_interval
 from panel.kalman.chain import basis_for, filter_chains, smooth_chains, spectral
 from panel.kalman.dense import LOG2PI, MomentGroup, _sym
 from panel.kalman.types import EStep, Smoothed
@@ -351,8 +352,8 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     once); ``h_parts = (B, psi)`` when ``H = B B' + diag(psi)`` (cheaper eigenproblem, see
     :func:`simultaneous_diagonalisation`); ``want_report=False`` skips the per-date arrays of the
     stretch (E-step only); ``only_cov=True`` fills the stretch's per-date arrays at ``cov_at`` only.
-    ``bounded=True`` (with ``want_report=False``, no ``Lambda``): the dense dates before the stretch
-    run like :func:`panel.kalman.dense.dense_smoother`'s ``bounded`` (O(sqrt(T) N^2) memory).
+    ``bounded=True``: the dense dates before the stretch run like
+    :func:`panel.kalman.dense.dense_smoother`'s ``bounded`` (O(sqrt(a) (k+N)^2) memory for them).
     """
     Y = np.asarray(Y, dtype=float)
     Sigma = np.asarray(Sigma, dtype=float)
@@ -360,32 +361,31 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     T, N = Y.shape
     s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
     a = final_stretch_start(Y) if data is None else data.a
-    bounded = bounded and want_estep and not want_report and Lambda is None and not cov_at
     if a >= T:
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
                                     want_estep=want_estep, bounded=bounded)
     data = StretchData(Y, s2, a) if data is None else data
     cov_at = set(cov_at)
-    keep = dense.checkpoint_interval(a) if bounded else None
+    keep = checkpoint_interval(a) if bounded else None
     flt, prior = _prior(Y, Sigma, H, s2, init, Lambda, a, keep_every=keep)
     try:
         tail = _Tail(data, Sigma, H, prior, Lambda, want_var=want_report, h_parts=h_parts)
     except linalg.LinAlgError:      # singular Sigma_OO with dormant assets or factors: dense copes
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
-                                    want_estep=want_estep)
+                                    want_estep=want_estep, bounded=bounded)
     k = tail.k
     loglik = tail.loglik
     w_groups, e_groups = tail.groups() if want_estep else ([], [])
     head = None
     if flt is not None:
         loglik += flt.loglik
-        rep = (dense._report_arrays(a, N, k, flt.alive, flt.mf, flt.Pf, flt.mp, flt.Pp, H, s2)
-               if want_report else dict.fromkeys(("fm", "fv", "pm", "pv", "ffm", "ffv")))
+        rep = (flt.report_arrays(N) if want_report
+               else dict.fromkeys(("fm", "fv", "pm", "pv", "ffm", "ffv")))
         head = dense._smooth(Y[:a], ~np.isnan(Y[:a]), s2[:a], k, flt.alive, flt.mf, flt.Pf,
                              flt.mp, flt.Pp, flt.loglik, flt.innov[:a], flt.innov_var[:a], rep,
                              cov_at={t for t in cov_at if t < a}, want_estep=want_estep,
                              terminal=(tail.m_star, tail.P_star, prior[0], prior[1], prior[2]),
-                             fold_under=(Sigma, H) if bounded else None)
+                             fold_under=(Sigma, H) if bounded and want_estep else None)
         if want_estep:
             w_groups = _merge(head.estep.w_groups, w_groups)
             e_groups = _merge(head.estep.e_groups, e_groups)

@@ -38,12 +38,13 @@ class Problem:
         if np.isnan(self.Y).all(axis=0).any():
             bad = [a for a, e in zip(panel.assets, np.isnan(self.Y).all(axis=0)) if e]
             raise SpecError(f"assets with no observation: {', '.join(bad)}; drop them")
-        _check_memory(self.Y)   # first: the packer's index arrays alone grow with N^2
         self.rs: ResolvedSpec = spec.resolve(N, panel.periods_per_year, T, panel.assets)
         ppy = self.rs.ppy
         self.s2 = volatility_scale(self.Y, spec.vol_scale)
         ip = spec.initial_premium
         self.init = None if ip is None else (ip.mean / ppy, (ip.vol / ppy) ** 2)
+        # before any O(N^2) allocation: the packer's index arrays alone grow with N^2
+        _check_memory(self.Y, spec.method, self.s2, self.init)
         self.packer = Packer(self.rs, N)
         self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
         self.h_prior = self._prior(spec.return_prior, units.return_variance)
@@ -82,9 +83,10 @@ def available_memory() -> float | None:
     return None
 
 
-def _check_memory(Y: np.ndarray) -> None:
-    """Refuse, before any allocation, a panel whose fit would not fit in memory."""
-    need, have = paths.memory_estimate(Y), available_memory()
+def _check_memory(Y: np.ndarray, method: str, s2, init) -> None:
+    """Refuse, before any allocation, a panel whose fit would not fit in memory (by the E-step
+    path ``method`` would take: :func:`panel.kalman.paths.memory_estimate`)."""
+    need, have = paths.memory_estimate(Y, method, s2, init), available_memory()
     if have is not None and need > 0.8 * have:
         T, N = Y.shape
         raise SpecError(f"a fit of {N} assets x {T} dates needs about {need / 1e9:.1f} GB of memory and "
