@@ -123,13 +123,15 @@ def _date_axis(ax, dates, max_ticks: int = 7) -> None:
 
 def band_edges(mean, std, ppy: int, q05=None, q95=None):
     """(low, high) edges of 90% bands, annualised: a Bayesian run's posterior 5% and 95% quantiles
-    ``q05``/``q95`` (per period) where given, else mean -+ 1.645 std.  Scalars or arrays."""
-    if q05 is not None and q95 is not None:
-        lo, hi = _annual(q05, ppy), _annual(q95, ppy)
-        if np.all(np.isfinite(lo)) and np.all(np.isfinite(hi)):
-            return lo, hi
+    ``q05``/``q95`` (per period) where given and finite, else mean -+ 1.645 std — element by
+    element, so ML and Bayesian vintages can share one chart.  Scalars or arrays."""
     m, s = _annual(mean, ppy), _annual(std, ppy)
-    return m - Z90 * s, m + Z90 * s
+    lo, hi = m - Z90 * s, m + Z90 * s
+    if q05 is not None and q95 is not None:
+        qlo, qhi = _annual(q05, ppy), _annual(q95, ppy)
+        use = np.isfinite(qlo) & np.isfinite(qhi)
+        lo, hi = np.where(use, qlo, lo), np.where(use, qhi, hi)
+    return lo, hi
 
 
 def _kind_edges(frame: pd.DataFrame, kind: str, ppy: int):
@@ -268,19 +270,22 @@ def vintage_frame(vintages, asset: str, date) -> pd.DataFrame:
     """Collect one asset's estimate at ``date`` from each vintage.
 
     ``vintages``: iterable of ``(as_of, estimates)`` (``PanelFit.estimates`` columns).  Returns
-    ``as_of, filtered_mean, filtered_std, smoothed_mean, smoothed_std`` for the vintages whose
-    estimates include ``(asset, date)``, oldest cut-off first.
+    ``as_of, filtered_mean, filtered_std, smoothed_mean, smoothed_std, smoothed_q05, smoothed_q95``
+    (the quantiles NaN for a maximum-likelihood vintage) for the vintages whose estimates include
+    ``(asset, date)``, oldest cut-off first.
     """
     stamp = pd.Timestamp(date)
+    values = ("filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std", "smoothed_q05",
+              "smoothed_q95")
     rows = []
     for as_of, est in vintages:
         hit = est[(est["asset"] == asset) & (pd.to_datetime(est["date"]) == stamp)]
         if len(hit):
             row = hit.iloc[0]
-            rows.append({"as_of": pd.Timestamp(as_of), **{c: float(row[c]) for c in
-                         ("filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std")}})
-    columns = ["as_of", "filtered_mean", "filtered_std", "smoothed_mean", "smoothed_std"]
-    return pd.DataFrame(rows, columns=columns).sort_values("as_of", kind="stable").reset_index(drop=True)
+            rows.append({"as_of": pd.Timestamp(as_of),
+                         **{c: float(row[c]) if c in row.index else np.nan for c in values}})
+    frame = pd.DataFrame(rows, columns=["as_of", *values])
+    return frame.sort_values("as_of", kind="stable").reset_index(drop=True)
 
 
 def _need_vintages(count: int, what: str, date, first_as_of=None) -> None:
@@ -299,19 +304,20 @@ def vintage_chart(history: pd.DataFrame, asset: str, date, ppy: int, title: str 
                   reference: float | None = None, reference_label: str = "true premium") -> Figure:
     """How the estimate of ``asset``'s premium at ``date`` moved across vintages (two or more).
 
-    ``history``: ``as_of, smoothed_mean, smoothed_std`` (and optionally ``filtered_*``) per vintage
-    (per period), e.g. :func:`vintage_frame` or the ``revision_history`` query.  The first vintage
-    at ``date`` itself is the real-time (filtered) estimate; later vintages revise it.
+    ``history``: ``as_of, smoothed_mean, smoothed_std`` (and optionally ``filtered_*`` and a
+    Bayesian vintage's ``smoothed_q05, smoothed_q95``, which then give its band) per vintage (per
+    period), e.g. :func:`vintage_frame` or the ``revision_history`` query.  The first vintage at
+    ``date`` itself is the real-time (filtered) estimate; later vintages revise it.
     ``reference``: optional per-period premium drawn as a dashed line (e.g. the simulated truth).
     """
     frame = history.sort_values("as_of", kind="stable")
     _need_vintages(len(frame), asset, date, frame["as_of"].iloc[0] if len(frame) else None)
     as_of = pd.to_datetime(frame["as_of"])
     mean = _annual(frame["smoothed_mean"], ppy)
-    std = _annual(frame["smoothed_std"], ppy)
+    lo, hi = band_edges(frame["smoothed_mean"], frame["smoothed_std"], ppy, frame.get("smoothed_q05"),
+                        frame.get("smoothed_q95"))
     fig, ax = plt.subplots(figsize=(9.0, 4.4), layout="constrained")
-    ax.fill_between(as_of, mean - Z90 * std, mean + Z90 * std, color=_SMOOTHED_FILL, alpha=0.55, lw=0,
-                    label="90% interval")
+    ax.fill_between(as_of, lo, hi, color=_SMOOTHED_FILL, alpha=0.55, lw=0, label="90% interval")
     ax.plot(as_of, mean, "o-", color=_SMOOTHED, lw=1.5, ms=5, label="estimate in each vintage (smoothed)")
     realtime = frame[as_of == pd.Timestamp(date)]
     if len(realtime) and "filtered_mean" in frame:

@@ -13,11 +13,12 @@ import numpy as np
 import pytest
 from sqlalchemy import create_engine
 
-from panel import units
+from panel import plots, units
 from panel.data import Panel
 from panel.model.fit import fit
 from panel.model.spec import ModelSpec, SpecError
-from panel.store import (is_bayes, list_runs, open_store, run_tables, schema, upgrade, write_dataset)
+from panel.store import (is_bayes, list_runs, open_store, run_query, run_tables, schema, upgrade,
+                         write_dataset)
 from panel.store.migrate import apply_migrations
 from panel.vintages.reproduce import reproduce, store_fit, stored_cross_section
 from tests.backends import BOTH
@@ -207,3 +208,18 @@ def test_backfill_vintages_sample_with_their_own_recorded_seeds(tmp_path, panel)
         assert set(runs["status"]) <= {"mixed", "not mixed"}
         assert reproduce(store, int(runs["id"].iloc[-1]), rtol=0.0).ok   # a warm-started vintage
         assert backfill(store, digest, spec, start=str(panel.dates[-2].date())).skipped == 2
+        history = run_query(store, "revision_history", {"dataset": "trees", "asset": panel.assets[0],
+                                                        "date": str(panel.dates[-2].date())})
+    # the revisions chart bands Bayesian vintages by their posterior quantiles, not mean +- 1.645 sd
+    assert len(history) == 2 and np.isfinite(history[["smoothed_q05", "smoothed_q95"]].to_numpy()).all()
+    fig = plots.vintage_chart(history, panel.assets[0], panel.dates[-2], 12)
+    band = fig.axes[0].collections[0].get_paths()[0].vertices[:, 1]
+    np.testing.assert_allclose([band.min(), band.max()],
+                               [1200 * history["smoothed_q05"].min(), 1200 * history["smoothed_q95"].max()])
+
+
+def test_band_edges_use_quantiles_where_a_vintage_has_them():
+    # a chart mixing an ML vintage (no quantiles) and a Bayesian one: each keeps its own band
+    lo, hi = plots.band_edges([0.01, 0.01], [0.001, 0.001], 12, [np.nan, 0.008], [np.nan, 0.0125])
+    np.testing.assert_allclose(lo, [1200 * (0.01 - plots.Z90 * 0.001), 1200 * 0.008])
+    np.testing.assert_allclose(hi, [1200 * (0.01 + plots.Z90 * 0.001), 1200 * 0.0125])

@@ -369,7 +369,8 @@ def vintage_history(store: Store, run_id: int, asset: str, date, runs=None) -> p
     the vintages' run ids instead (one per cut-off), e.g. a report's own choice.
 
     Columns: ``as_of, run_id, kind, filtered_mean, filtered_std, smoothed_mean, smoothed_std,
-    revision`` (the ``revision_history`` query; per-period decimals).
+    smoothed_q05, smoothed_q95, revision`` (the ``revision_history`` query; per-period decimals;
+    the quantiles are a Bayesian vintage's, NaN for maximum likelihood).
     """
     from panel.store import run_query
 
