@@ -50,6 +50,13 @@ def test_bayes_round_trip_through_the_commands(cli_store):
     again = _json(cli_store.invoke("reproduce", str(run), "--rtol", "0", "--json"))
     assert again["reproduced"] and "posterior_draws" in [t["table"] for t in again["tables"]]
 
+    # diff against an ML fit says which run is Bayesian and what its numbers are
+    ml = _json(cli_store.invoke("fit", "--data", "trees", "--json"))["run_id"]
+    assert _json(cli_store.invoke("diff", str(ml), str(run), "--json"))["bayesian_runs"] == [run]
+    shown = cli_store.invoke("diff", str(ml), str(run))
+    assert shown.exit_code == 0, shown.output
+    assert f"run {run} is Bayesian: premia and parameters below are posterior means" in " ".join(shown.stdout.split())
+
 
 def test_save_draws_writes_netcdf_and_refuses_without_bayes(cli_store):
     import arviz as az

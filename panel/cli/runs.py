@@ -345,7 +345,7 @@ def diff(ctx: typer.Context,
     import pandas as pd
 
     from panel.vintages.reproduce import run_inputs, stored_params
-    from panel.store import run_query, run_tables
+    from panel.store import is_bayes, run_query, run_tables
 
     st = state(ctx)
     with store_for(st) as store, user_errors():
@@ -393,6 +393,7 @@ def diff(ctx: typer.Context,
                                                       "loglik", "aic", "bic", "n_params", "iterations")}
                                    for r in runs_],
                           "settings_changed": changed, "settings": settings,
+                          "bayesian_runs": [int(r["id"]) for r in runs_ if is_bayes(r)],
                           "recorded_spec_keys_differing": recorded_only, "common_date": common,
                           "periods_per_year": ppy,
                           "units": output.MACHINE_UNITS, "premia": premia, "parameters": changes,
@@ -424,6 +425,11 @@ def diff(ctx: typer.Context,
                                                     f"{', '.join(recorded_only)})" if recorded_only else ""))
     if ppy[0] != ppy[1]:
         output.line(f"note: the runs have different periods a year ({ppy[0]} and {ppy[1]})")
+    bayesian = [r["id"] for r in runs_ if is_bayes(r)]
+    if bayesian:
+        output.line(f"note: run {' and '.join(map(str, bayesian))} {'is' if len(bayesian) == 1 else 'are'} "
+                    "Bayesian: premia and parameters below are posterior means, the log-likelihood, AIC "
+                    "and BIC are at the posterior-mean parameters (not a basis for model choice)")
     rows = []
     for r in premia.itertuples(index=False):
         fa, fb = r.filtered_mean_a, r.filtered_mean_b

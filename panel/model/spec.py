@@ -443,8 +443,9 @@ def _check_estimation(spec: "ModelSpec") -> None:
         raise SpecError(f"warmup must be a whole number >= 0 (or None: as many as draws), got {spec.warmup!r}")
     for name in ("premium_prior", "return_prior"):
         if getattr(spec, name) is not None:
-            raise SpecError(f"{name} is a prior of ML estimation; with estimation='bayes' state priors "
-                            "with priors=Priors(...) instead")
+            raise SpecError(f"{name} (--{name.replace('_', '-')}) is a prior of ML estimation; with "
+                            "estimation='bayes' state priors with priors=Priors(...) (--prior "
+                            "NAME=VALUE) instead")
     if spec.starts != 1 or spec.time_budget is not None:
         raise SpecError("starts and time_budget apply to ML estimation only; drop them for "
                         "estimation='bayes' (several chains guard against a poor start)")
