@@ -148,21 +148,56 @@ def test_a_resume_with_another_chain_is_another_backfill(cli_store):
 def test_backfills_stored_before_the_chain_was_recorded_are_still_found(sleeves_store):
     """A backfill stored before the chain entered the key (settings without ``chain``, key of the
     other settings) is found by its settings as before."""
-    from sqlalchemy import update
-
     from panel.model.spec import ModelSpec
-    from panel.store import backfill_key, list_runs, schema
     from panel.vintages.backfill import backfill, find_backfill, settings_key
     from tests.backfill_fixtures import NAME
 
     store, panel = sleeves_store
     spec = ModelSpec(max_iter=40, std_errors="never")
     backfill(store, NAME, spec, chain=2, start="2023-11-30", end="2023-12-31")
+    _as_an_older_riskprem_stored_it(store, panel)
+    found = find_backfill(store, NAME, spec=spec)
+    assert found.key == settings_key(panel.hash, spec, "expanding") and found.n_vintages == 2
+
+
+def _as_an_older_riskprem_stored_it(store, panel):
+    """Rewrite every stored run's settings without ``chain`` (and its key accordingly)."""
+    from sqlalchemy import update
+
+    from panel.store import backfill_key, list_runs, schema
+
     stored = list_runs(store)
-    with store.engine.begin() as conn:   # as an older riskprem stored it
+    with store.engine.begin() as conn:
         for row in stored.itertuples():
             settings = {k: v for k, v in row.settings.items() if k != "chain"}
             conn.execute(update(schema.runs).where(schema.runs.c.id == int(row.id))
                          .values(settings=settings, backfill_key=backfill_key(panel.hash, settings)))
-    found = find_backfill(store, NAME, spec=spec)
-    assert found.key == settings_key(panel.hash, spec, "expanding") and found.n_vintages == 2
+
+
+def test_a_backfill_stored_before_the_chain_was_recorded_is_resumed_not_refitted(sleeves_store, tmp_path):
+    """The same command resumes it under its old key (settings still without ``chain``) when its
+    vintages started as this chain length starts them, and the result is the uninterrupted
+    backfill's, bit for bit; another chain length is another backfill."""
+    from panel.model.spec import ModelSpec
+    from panel.store import list_runs, open_store, run_tables, write_dataset
+    from panel.vintages.backfill import backfill, settings_key
+    from tests.backfill_fixtures import NAME
+
+    store, panel = sleeves_store
+    spec = ModelSpec(max_iter=40, std_errors="never")
+    cuts = dict(start="2023-09-30", end="2023-12-31")
+    backfill(store, NAME, spec, chain=2, start=cuts["start"], end="2023-10-31")   # interrupted
+    _as_an_older_riskprem_stored_it(store, panel)
+    resumed = backfill(store, NAME, spec, chain=2, **cuts)
+    old_key = settings_key(panel.hash, spec, "expanding")
+    assert (resumed.skipped, len(resumed.written), resumed.key) == (2, 2, old_key)
+    runs = list_runs(store)
+    assert set(runs["backfill_key"]) == {old_key} and all("chain" not in s for s in runs["settings"])
+    with open_store(tmp_path / "whole.duckdb") as whole:             # the same backfill in one go
+        write_dataset(whole, panel, NAME)
+        backfill(whole, NAME, spec, chain=2, **cuts)
+        for mine, theirs in zip(runs["id"], list_runs(whole)["id"]):
+            a, b = run_tables(store, int(mine))["estimates"], run_tables(whole, int(theirs))["estimates"]
+            pd.testing.assert_frame_equal(a, b)
+    other = backfill(store, NAME, spec, chain=3, **cuts)              # chain 3 would start otherwise
+    assert (other.skipped, len(other.written)) == (0, 4) and other.key != old_key

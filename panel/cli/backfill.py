@@ -183,6 +183,7 @@ def backfill(
         output.emit_json({"dataset": data, "dataset_hash": plan.dataset_hash, "backfill_key": plan.key,
                           "window": plan.window.text, "chain": plan.chain, "warm_start": plan.warm_start,
                           "n_cutoffs": len(plan.vintages), "first_cutoff": first, "last_cutoff": last,
+                          "resumed_unchained": plan.legacy,
                           "skipped": report.skipped, "fitted": len(report.written), "where": report.where,
                           "elapsed_s": report.elapsed_s, "interrupted": interrupted, "vintages": vintages,
                           "settings": {"spec": spec.to_dict(), "window": plan.window.text}})
@@ -211,6 +212,9 @@ def _print_backfill(st, data, plan, report, vintages, interrupted) -> None:
     output.line(f"backfill of {data} ({output.short_hash(plan.dataset_hash)}): {len(plan.vintages)} cut-offs "
                 f"{output.day(first)} to {output.day(last)}, window {plan.window.text}, key "
                 f"{plan.key[:10]}", style="bold")
+    if plan.legacy:
+        output.line("note: resumed a backfill stored before the chain length was recorded (its vintages "
+                    f"started as --chain {plan.chain} starts them); new vintages join it under its key")
     verb = "stopped after" if interrupted else "fitted"
     output.line(f"{verb} {len(report.written)} vintage(s) in {_duration(report.elapsed_s)} on {report.where}; "
                 f"{report.skipped} already stored (skipped)")

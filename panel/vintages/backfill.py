@@ -58,8 +58,8 @@ from panel.vintages.errors import BackfillError
 from panel.vintages.inputs import (Window, parse_date, rebuild_vintage, vintage_inputs,  # noqa: F401 (re-exported)
                                    vintage_panel)
 from panel.vintages.pools import default_workers, open_pool  # noqa: F401 (re-exported)
-from panel.store import (Store, backfill_key, find_run, from_fit, json_ready, load_panel, resolve_dataset,
-                         run_environment, run_query, run_tables, write_run)
+from panel.store import (Store, backfill_key, find_run, from_fit, get_run, json_ready, load_panel,
+                         resolve_dataset, run_environment, run_query, run_tables, write_run)
 
 #: ``runs.kind`` of a backfill vintage.
 KIND = "backfill"
@@ -154,6 +154,8 @@ class BackfillPlan:
     chain: int
     label: str | None
     vintages: tuple[Vintage, ...]
+    #: Resuming a backfill stored before the chain was recorded: its key, and settings without it.
+    legacy: bool = False
 
     @property
     def todo(self) -> tuple[Vintage, ...]:
@@ -196,11 +198,36 @@ def plan_backfill(store: Store, dataset: str, spec: ModelSpec | None = None, *, 
             raise BackfillError(f"at the first cut-off {as_of.date()}: {problem}; start the backfill at "
                                 f"{later.date()} or later (--start), the first cut-off with enough data")
         raise SpecError(f"at cut-off {as_of.date()}: {problem}")
-    key = settings_key(digest, spec, w, effective_chain(chain, warm_start))
-    vintages = tuple(Vintage(as_of=d, chain=i // chain, position=i, stored=find_run(store, digest, key, d))
-                     for i, d in enumerate(dates))
+    every_chain = effective_chain(chain, warm_start)
+    key = settings_key(digest, spec, w, every_chain)
+    stored = [find_run(store, digest, key, d) for d in dates]
+    legacy = False
+    if not any(stored):
+        # a backfill stored before the chain was recorded is resumed, not refitted, when its
+        # vintages started as this chain length would have started them
+        old_key = settings_key(digest, spec, w, None)
+        old = [find_run(store, digest, old_key, d) for d in dates]
+        if any(old) and _started_as_chained(store, old, every_chain):
+            key, stored, legacy = old_key, old, True
+    vintages = tuple(Vintage(as_of=d, chain=i // chain, position=i, stored=run)
+                     for i, (d, run) in enumerate(zip(dates, stored)))
     return BackfillPlan(panel=panel, dataset_hash=digest, spec=spec, window=w, key=key,
-                        warm_start=bool(warm_start), chain=int(chain), label=label, vintages=vintages)
+                        warm_start=bool(warm_start), chain=int(chain), label=label, vintages=vintages,
+                        legacy=legacy)
+
+
+def _started_as_chained(store: Store, stored: list, chain: int) -> bool:
+    """Whether the stored vintages (run id or None per grid position) started as chains of
+    ``chain`` cut-offs start them: cold at each chain's first position and after a missing
+    predecessor, otherwise warm from the run at the previous position."""
+    for i, run_id in enumerate(stored):
+        if run_id is None:
+            continue
+        parent = get_run(store, run_id)["parent_run"]
+        warm = i % chain != 0 and i > 0 and stored[i - 1] is not None
+        if (parent is None) == warm or (warm and int(parent) != stored[i - 1]):
+            return False
+    return True
 
 
 def _refusal(panel: Panel, as_of: pd.Timestamp, window: Window, spec: ModelSpec) -> str | None:
@@ -416,6 +443,7 @@ def _store_vintage(store: Store, plan: BackfillPlan, outcome: VintageOutcome, pa
     fitted = outcome.fit
     run, tables = from_fit(fitted, dataset_hash=plan.dataset_hash, as_of=outcome.as_of.date(), kind=KIND,
                            settings=vintage_settings(fitted, plan.dataset_hash, plan.window,
+                                                     None if plan.legacy else
                                                      effective_chain(plan.chain, plan.warm_start)),
                            parent_run=parent, label=plan.label, started_utc=outcome.started_utc,
                            finished_utc=outcome.finished_utc, **outcome.environment)
