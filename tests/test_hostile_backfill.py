@@ -201,3 +201,17 @@ def test_a_backfill_stored_before_the_chain_was_recorded_is_resumed_not_refitted
             pd.testing.assert_frame_equal(a, b)
     other = backfill(store, NAME, spec, chain=3, **cuts)              # chain 3 would start otherwise
     assert (other.skipped, len(other.written)) == (0, 4) and other.key != old_key
+
+
+def test_a_backfill_that_starts_afresh_names_the_settings_that_made_it_new(cli_store):
+    """Running a backfill again with one setting changed refits every cut-off (another backfill);
+    the command says which stored backfill is closest and which settings differ."""
+    cuts = ("--start", "2019-09-30", "--workers", "1", *QUICK)
+    first = cli_store.invoke("backfill", "--data", "trees", *cuts, "--chain", "2", "--json")
+    assert json.loads(first.stdout)["closest_other_backfill"] is None
+    again = cli_store.invoke("backfill", "--data", "trees", *cuts, "--chain", "2", "--premium-prior", "2:60")
+    assert again.exit_code == 0, again.output
+    assert "a new backfill; the stored one closest to it" in again.stderr
+    assert "differs in premium_prior" in again.stderr
+    done = json.loads(cli_store.invoke("backfill", "--data", "trees", *cuts, "--chain", "3", "--json").stdout)
+    assert done["closest_other_backfill"]["differs_in"] == ["chain"]

@@ -146,7 +146,8 @@ def backfill(
     backfill (Ctrl-C keeps every finished vintage; exit code 130).  Results do not depend on
     --workers or --scheduler: warm starts follow fixed chains of --chain cut-offs.
     """
-    from panel.vintages.backfill import BackfillInterrupted, default_workers, plan_backfill, run_backfill
+    from panel.vintages.backfill import (BackfillInterrupted, default_workers, nearest_backfill, plan_backfill,
+                                         run_backfill)
 
     st = state(ctx)
     parse_date(start, "--start")
@@ -172,6 +173,10 @@ def backfill(
         reason = serial_reason(plan, workers, scheduler)
         if reason and not st.quiet:
             output.note(reason)
+        near = None if plan.skipped else nearest_backfill(store, plan)
+        if near is not None and not st.quiet and not as_json:
+            output.note(f"note: a new backfill; the stored one closest to it ({near[0].key[:10]}, "
+                        f"{near[0].n_vintages} vintages) differs in {', '.join(near[1])}")
         with _Progress(st) as bar:
             try:
                 report = run_backfill(store, plan, workers=workers, scheduler=scheduler, progress=bar)
@@ -184,6 +189,9 @@ def backfill(
                           "window": plan.window.text, "chain": plan.chain, "warm_start": plan.warm_start,
                           "n_cutoffs": len(plan.vintages), "first_cutoff": first, "last_cutoff": last,
                           "resumed_unchained": plan.legacy,
+                          "closest_other_backfill": None if near is None else {
+                              "backfill_key": near[0].key, "n_vintages": near[0].n_vintages,
+                              "differs_in": near[1]},
                           "skipped": report.skipped, "fitted": len(report.written), "where": report.where,
                           "elapsed_s": report.elapsed_s, "interrupted": interrupted, "vintages": vintages,
                           "settings": {"spec": spec.to_dict(), "window": plan.window.text}})

@@ -494,6 +494,24 @@ def list_backfills(store: Store, dataset: str) -> list[BackfillInfo]:
     return out
 
 
+def nearest_backfill(store: Store, plan: BackfillPlan) -> tuple[BackfillInfo, list[str]] | None:
+    """The dataset's stored backfill (other than ``plan``'s own) whose settings differ from the
+    plan's in the fewest entries, with their names (model settings, ``window``, ``chain``); None
+    when there is no other.  Says why a command that looks like an earlier one starts afresh."""
+    mine = {**plan.spec.to_dict(), "window": plan.window.text,
+            "chain": None if plan.legacy else effective_chain(plan.chain, plan.warm_start)}
+    best = None
+    for info in list_backfills(store, plan.dataset_hash):
+        if info.key == plan.key:
+            continue
+        theirs = {**(info.settings.get("spec") or {}), "window": info.settings.get("window"),
+                  "chain": info.settings.get("chain")}
+        differ = sorted(k for k in set(mine) | set(theirs) if mine.get(k) != theirs.get(k))
+        if best is None or len(differ) < len(best[1]):
+            best = (info, differ)
+    return best
+
+
 def find_backfill(store: Store, dataset: str, *, key: str | None = None, spec: ModelSpec | None = None,
                   window=None) -> BackfillInfo:
     """The one backfill of ``dataset`` meant: by its settings (``spec`` and ``window``), by a key
