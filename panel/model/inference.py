@@ -141,7 +141,7 @@ def _inverse_information(theta, score, scale, rel_step, base, central_fallback=T
     can bend within the forward step (measured on a simulated 30-asset panel: a loading of 8e-6
     got a diagonal of -2e7 forwards, a positive one centrally)."""
     for attempt in (base, None) if base is not None and central_fallback else (base,):
-        step = rel_step if attempt is not None else max(rel_step, CENTRAL_STEP)
+        step = CENTRAL_STEP if attempt is None and base is not None else rel_step
         info = observed_information(theta, score, scale, step, attempt)
         try:
             cov = np.linalg.inv(info)
