@@ -31,6 +31,14 @@ from panel.kalman.types import EStep, MomentGroup, Smoothed
 
 LOG2PI = float(np.log(2.0 * np.pi))
 MAX_STEPS = 64      # filter steps (index work and blocks of H, one per pair of sets) kept for reuse
+STEP_BYTES = 2 ** 26  # ... and at most about this much of their N x N blocks (two per step)
+
+
+def steps_kept(n: int) -> int:
+    """Filter steps (or pencils) kept for reuse with ``n`` state components: MAX_STEPS, fewer when
+    their blocks would pass STEP_BYTES (N = 500: 33).  A dropped step is rebuilt from the same
+    inputs (the same numbers); with isolated gaps few are ever reused."""
+    return max(1, min(MAX_STEPS, int(STEP_BYTES // (16.0 * max(n, 1) ** 2))))
 
 
 def first_observations(Y: np.ndarray) -> np.ndarray:
@@ -300,7 +308,7 @@ def dense_filter(Y, Sigma, H, s2, *, init=None, Lambda=None, stop=None, keep_eve
     loglik = 0.0
     # a step holds blocks of H: with isolated gaps nearly every date has its own, so keep a few
     step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), k, Q, H,
-                                                        init is not None), most=MAX_STEPS)
+                                                        init is not None), most=steps_kept(k + N))
 
     def advance(t, m, P, prev, innov_row, innov_var_row):
         """One date: (predicted P, step, filtered m, filtered P, log-likelihood term)."""

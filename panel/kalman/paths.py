@@ -19,7 +19,7 @@ import numpy as np
 
 from panel.kalman import segments
 from panel.kalman.checkpoints import checkpoint_interval
-from panel.kalman.dense import MAX_STEPS, dense_smoother, first_observations
+from panel.kalman.dense import dense_smoother, first_observations, steps_kept
 from panel.kalman.impute import MAX_GROUPS, collapse
 from panel.kalman.stretch import StretchData, final_stretch_start, stretch_smoother
 from panel.kalman.types import EStep, Smoothed
@@ -102,7 +102,8 @@ def memory_estimate(Y, method: str = "auto", scale2=None, init=None) -> float:
       :func:`dense_kept_bytes` (O(T N^2) up to KEEP_ALL_BYTES, O(sqrt(T) N^2) beyond); the segment
       path's E-step likewise for its forward records
       (:func:`panel.kalman.segments.dense_equivalent` dates; its report takes the stretch path);
-    * the dense filter steps kept for reuse (up to ``MAX_STEPS``, a block of H each);
+    * the dense filter steps kept for reuse (:func:`panel.kalman.dense.steps_kept`, two N x N
+      blocks each);
     * the EM moment sums: three N x N per observed set up to ``impute.MAX_GROUPS``;
     * about 30 N x N work arrays (eigenproblems, M-step, start values) and ~20 (T, N) arrays
       (data, report, estimates table).  An E-step result holds O(N^2).
@@ -120,7 +121,7 @@ def memory_estimate(Y, method: str = "auto", scale2=None, init=None) -> float:
         kept = max(kept, dense_kept_bytes(segments.dense_equivalent(segs), N))
         dense_dates = max(a, sum(seg[0] == "dense" for seg in segs))
     sets = np.unique(np.packbits(~np.isnan(Y), axis=1), axis=0).shape[0]
-    mats = min(dense_dates, MAX_STEPS) + 3.0 * (min(sets, MAX_GROUPS) - 1) + 30.0
+    mats = 2.0 * min(dense_dates, steps_kept(N)) + 3.0 * (min(sets, MAX_GROUPS) - 1) + 30.0
     return kept + 8.0 * (mats * N * N + 20.0 * T * N)
 
 

@@ -306,14 +306,14 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = Fal
     Y, obs, s2, init = plan.Y, plan.obs, plan.s2, plan.init
     T, N = Y.shape
     step_for = _memo(lambda prev, observed: _FilterStep(prev, np.flatnonzero(observed), 0, Sigma,
-                                                        H, init is not None), most=dense.MAX_STEPS)
+                                                        H, init is not None), most=dense.steps_kept(N))
 
     def pencil(O):                  # one eigenproblem per observed set, shared by its stretches
         parts = None if h_parts is None else (h_parts[0][O], h_parts[1][O])
         d, V, W, logdet_v = simultaneous_diagonalisation(Sigma[np.ix_(O, O)], H[np.ix_(O, O)],
                                                          parts)
         return np.maximum(d, 0.0), V, W, logdet_v
-    pencil_for = _memo(pencil, most=dense.MAX_STEPS)       # recomputed alike: the same numbers
+    pencil_for = _memo(pencil, most=dense.steps_kept(N))   # recomputed alike: the same numbers
     scratch = np.empty((2, N))
 
     def forward(i0, i1, m, P, prev, loglik=0.0):
