@@ -108,8 +108,8 @@ def memory_estimate(Y, method: str = "auto", scale2=None, init=None) -> float:
     * about 30 N x N work arrays (eigenproblems, M-step, start values) and ~20 (T, N) arrays
       (data, report, estimates table).  An E-step result holds O(N^2).
 
-    Measured (N = 500, T = 1,200, 2% isolated gaps, dense path): estimate 0.65 GB, a 3-iteration
-    fit's peak RSS 0.86 GB including the interpreter."""
+    Measured (N = 500, T = 1,200, 2% isolated gaps, dense path): estimate 0.59 GB, a 3-iteration
+    fit's peak RSS 0.74 GB including the interpreter."""
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape
     path = choose(Y, method, scale2, init)
