@@ -1,4 +1,5 @@
-"""The active-set finish's stopping rule: its estimate of the gain still to be had."""
+"""The active-set finish's stopping rule (its estimate of the gain still to be had) and the
+central-difference fallback of the standard errors."""
 
 import numpy as np
 
@@ -30,3 +31,21 @@ def test_remaining_gain_is_infinite_before_any_curvature_is_seen():
     curv = _Curvature(most=5)
     curv.add(np.zeros(3), np.ones(3))
     assert curv.remaining_gain(np.ones(3)) == np.inf
+
+
+def test_forward_information_that_is_not_positive_definite_is_redone_centrally():
+    # Analytic reference: f(x) = -x^2 / 2 has information 1 at x = 1.  A narrow bump in its score
+    # just above x = 1 (inside the forward step of 1e-6, far inside the central step of 1e-4) gives
+    # forward differences a negative information; the fallback's central differences see past it.
+    from panel.model.inference import _inverse_information
+
+    def score(theta):
+        x = theta[0]
+        bump = 50.0 if 1.0 < x < 1.0 + 2e-6 else 0.0
+        return np.array([-x + bump])
+
+    theta, scale = np.array([1.0]), np.array([1.0])
+    kept = _inverse_information(theta, score, scale, 1e-6, score(theta), central_fallback=False)
+    assert kept[0, 0] < 0                                    # forward: not positive definite
+    cov = _inverse_information(theta, score, scale, 1e-6, score(theta))
+    assert abs(cov[0, 0] - 1.0) < 1e-6                       # central: the exact information 1

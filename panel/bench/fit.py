@@ -277,6 +277,11 @@ def run(quick: bool = False, threads: int = 1, only=None) -> dict:
     return out
 
 
+def _head(r: dict) -> str:
+    """A row's first columns: N, T and the pattern."""
+    return f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10}"
+
+
 def format_table(res: dict) -> str:
     """Compact text table of :func:`run`'s results."""
     lines = [f"riskprem benchmark (BLAS threads={res['meta']['threads']}, "
@@ -286,9 +291,9 @@ def format_table(res: dict) -> str:
              f"{'ratio':>8} {'loglik_rel':>10}"]
     for r in res["compare"]:
         if "error" in r:
-            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} ERROR {r['error']}")
+            lines.append(f"{_head(r)} ERROR {r['error']}")
             continue
-        lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['method']:<8} "
+        lines.append(f"{_head(r)} {r['method']:<8} "
                      f"{r['estep_true_s']:>9.4f} {r['sm_smoother_s']:>9.3f} "
                      f"{r['smoother_ratio']:>8.0f} {r['loglik_rel_diff']:>10.1e}")
     k1, k2 = res["meta"].get("dfm_iters", (1, 21))
@@ -299,24 +304,24 @@ def format_table(res: dict) -> str:
         if "error" in r:
             continue
         if r["dfmq_iter_s"] is None:
-            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['em_iter_s']:>9.4f} "
+            lines.append(f"{_head(r)} {r['em_iter_s']:>9.4f} "
                          f"  statsmodels failed: {r['dfmq_error'][:60]}")
         else:
-            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['em_iter_s']:>9.4f} "
+            lines.append(f"{_head(r)} {r['em_iter_s']:>9.4f} "
                          f"{r['dfmq_iter_s']:>9.3f} {r['em_ratio']:>8.0f}")
     lines += ["(c) our full fit (panel.fit, default ModelSpec); scale rows and (e) ragged fits "
               "(ours alone, each in its own worker)",
               f"{'N':>4} {'T':>5} {'pattern':<10} {'estep_s':>9} {'report_s':>9} {'fit_s':>9} "
               f"{'E-steps':>8} {'status':<12} {'loglik':>14} {'peakRSS_MB':>10}"]
-    for r in res["compare"] + res["scale"] + res.get("ragged_fit", []):
+    fits = res["compare"] + res["scale"] + res.get("ragged_fit", [])
+    for r in fits:
         if "error" in r:
-            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} ERROR {r['error']}")
+            lines.append(f"{_head(r)} ERROR {r['error']}")
             continue
-        lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['estep_s']:>9.4f} "
+        lines.append(f"{_head(r)} {r['estep_s']:>9.4f} "
                      f"{r['report_s']:>9.3f} {r['fit_s']:>9.2f} {r['fit_esteps']:>8d} "
                      f"{r['fit_status']:<12} {r['fit_loglik']:>14.4f} {r['peak_rss_mb']:>10.0f}")
-    counts = [r["fit_esteps"] for r in res["compare"] + res["scale"] + res.get("ragged_fit", [])
-              if "error" not in r]
+    counts = [r["fit_esteps"] for r in fits if "error" not in r]
     if counts:
         lines.append(f"median E-steps per fit over these {len(counts)} fits: {np.median(counts):.0f}")
     if res.get("ragged"):
@@ -331,7 +336,7 @@ def format_table(res: dict) -> str:
             sm = ("   (statsmodels skipped: memory)" if r["sm_smoother_s"] is None else
                   f"{r['sm_smoother_s']:>8.2f} {r['smoother_ratio']:>8.0f} "
                   f"{r['loglik_rel_diff']:>10.1e}")
-            lines.append(f"{r['N']:>4} {r['T']:>5} {r['pattern']:<10} {r['method']:<8} "
+            lines.append(f"{_head(r)} {r['method']:<8} "
                          f"{r['missing_cells']:>7d} {r['estep_s']:>9.4f} {r['vs_balanced']:>6.1f} "
                          f"{sm} {r['worker_peak_rss_mb']:>7.0f}")
     return "\n".join(lines)

@@ -165,7 +165,7 @@ class ModelSpec:
         L-BFGS's own quadratic model would still make, both below ``loglik_tol``, and no projected
         gradient above 10 ``loglik_tol``; a forward-differenced information that is not positive
         definite is redone by central differences.  "gradient": every projected gradient below
-        ``loglik_tol`` itself (more E-steps for gains of 1e-5 in all: 273 against 240 and 395
+        ``loglik_tol`` itself (more E-steps for gains below 1e-6 in all: 273 against 240 and 395
         against 317 on the N=100 benchmark panels, 219 against 188 on the Fama-French 12
         industries); :meth:`from_dict` reads settings without the key (runs stored before it existed) as
         "gradient", so they reproduce exactly.
