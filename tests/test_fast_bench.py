@@ -27,6 +27,10 @@ def test_quick_benchmark_json(tmp_path):
     for row in res["scale"] + res["ragged_fit"]:
         assert "error" not in row, row
         assert row["peak_rss_mb"] > 0 and row["fit_esteps"] >= 1
+    gaps = [r for r in res["ragged_fit"] if r["pattern"] == "gaps_2"]
+    assert gaps and {gaps[0]["finish"], gaps[0]["alt_finish"]} == {"filled", "direct"}
+    assert abs(gaps[0]["fit_loglik"] - gaps[0]["alt_fit_loglik"]) < 1e-4   # both within loglik_tol
+    assert "the other route on the same panel" in proc.stdout
     assert {r["pattern"] for r in res["ragged"]} == {"balanced", "staircase", "exits", "last_cell",
                                                      "gaps_0.5", "gaps_2"}
     for row in res["ragged"]:

@@ -78,6 +78,13 @@ def choose(Y, method: str, scale2=None, init=None) -> str:
     return min(costs, key=costs.get)
 
 
+def estep_cost(Y, method: str = "auto", scale2=None, init=None) -> float:
+    """Estimated cost of one E-step on ``Y`` (T, N) by the path :func:`choose` resolves ``method``
+    to (the units of :func:`estimated_cost`)."""
+    varies = scale2 is not None and not np.all(np.asarray(scale2) == np.asarray(scale2)[0])
+    return estimated_cost(Y, choose(Y, method, scale2, init), varies, init)
+
+
 def keeps_all_bytes(dates: int, n: int) -> float:
     """Bytes of the filtered and predicted (n, n) covariances of ``dates`` dense dates."""
     return 16.0 * dates * n * n
@@ -156,9 +163,21 @@ class Plan:
         imputed under ``Sigma`` (premium innovations) and ``H`` (return shocks), so the result holds
         O(N^2) whatever the gap pattern: use it with these same parameters (as the M-step and the
         score do)."""
-        est = self._estep(Sigma, H, h_parts)
-        return EStep(est.loglik, collapse(est.w_groups, np.asarray(Sigma, dtype=float)),
-                     collapse(est.e_groups, np.asarray(H, dtype=float)))
+        return _collapsed(self._estep(Sigma, H, h_parts), Sigma, H)
+
+    def estep_with_means(self, Sigma, H, h_parts=None) -> tuple[EStep, np.ndarray]:
+        """:meth:`estep` and the smoothed premia (T, N) (NaN before an asset's first observation)
+        at the same parameters: one pass on the dense and stretch paths, an E-step and a report on
+        the segment path (it has no report of its own)."""
+        if self.segments is not None:
+            return self.estep(Sigma, H, h_parts), self.report(Sigma, H).smoothed_mean
+        if self.data is None:
+            out = dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
+                                 bounded=self._bounded(self.Y.shape[0]))
+        else:
+            out = stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
+                                   data=self.data, h_parts=h_parts, bounded=self._bounded(self.data.a))
+        return _collapsed(out.estep, Sigma, H), out.smoothed_mean
 
     def _estep(self, Sigma, H, h_parts) -> EStep:
         if self.segments is not None:
@@ -199,6 +218,12 @@ class Plan:
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, Lambda=Lambda,
                                 cov_at=cov_at, want_estep=False, data=self.data, only_cov=only_cov,
                                 bounded=bounded)
+
+
+def _collapsed(est: EStep, Sigma, H) -> EStep:
+    """``est`` with its moment groups collapsed beyond MAX_GROUPS (imputed under Sigma and H)."""
+    return EStep(est.loglik, collapse(est.w_groups, np.asarray(Sigma, dtype=float)),
+                 collapse(est.e_groups, np.asarray(H, dtype=float)))
 
 
 def estep(Y, Sigma, H, scale2, init, method: str = "auto") -> EStep:

@@ -10,7 +10,7 @@ import time
 import numpy as np
 import pandas as pd
 
-from panel.model import inference, mstep as ms
+from panel.model import inference, mstep as ms, surrogate
 from panel.model.em import run_em
 from panel.model.params import Params, count_free
 from panel.model.problem import Problem, as_panel
@@ -104,8 +104,11 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
 
 
 def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
-    """One EM run (with its accelerations) from ``p0``."""
+    """One EM run (with its accelerations) from ``p0``; on the panel's gap-filled copy where
+    :func:`panel.model.surrogate.route` says so."""
     spec, rs = prob.spec, prob.rs
+    if surrogate.route(prob, spec.finish):
+        return surrogate.estimate(prob, p0, floor, progress, lambda pr: _quasi_newton_setup(pr, floor))
     return run_em(
         p0, prob.estep,
         lambda e, p: ms.mstep(e, p, rs, floor, prob.sigma_prior, prob.h_prior),

@@ -4,6 +4,8 @@ and shared by the estimator (:mod:`panel.model.fit`), inference and reporting (c
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 import pandas as pd
 
@@ -57,10 +59,19 @@ class Problem:
         return ms.PriorTerms(weight=prior.weight, v=to_variance(prior.vol, self.rs.ppy))
 
     def estep(self, p: Params):
-        parts = None
-        if p.psi is not None:           # diagonal or factor H: the cheaper exact eigenproblem
-            parts = (np.zeros((p.n_assets, 0)) if p.B is None else p.B, p.psi)
-        return self.plan.estep(p.Sigma, p.H, h_parts=parts)
+        return self.plan.estep(p.Sigma, p.H, h_parts=_h_parts(p))
+
+    def estep_with_means(self, p: Params):
+        """(E-step, smoothed premia (T, N)) at ``p`` (:meth:`panel.kalman.paths.Plan.estep_with_means`)."""
+        return self.plan.estep_with_means(p.Sigma, p.H, h_parts=_h_parts(p))
+
+    def with_data(self, Y: np.ndarray) -> "Problem":
+        """This problem on other returns ``Y`` of the same shape (a gap-filled copy): the same spec,
+        priors, packer and volatility scale, its own E-step plan."""
+        other = copy.copy(self)
+        other.Y = np.asarray(Y, dtype=float)
+        other.plan = paths.Plan(other.Y, self.s2, self.init, self.spec.method)
+        return other
 
     def objective(self, e, p: Params) -> float:
         return e.loglik + ms.log_prior(p, self.sigma_prior, self.h_prior)
@@ -69,6 +80,13 @@ class Problem:
         p = self.packer.unpack(theta, like)
         return ms.expected_complete_loglik_grad(self.estep(p), p, self.rs, self.packer,
                                                 self.sigma_prior, self.h_prior)
+
+
+def _h_parts(p: Params):
+    """``(B, psi)`` of a diagonal or factor H (the cheaper exact eigenproblem), else None."""
+    if p.psi is None:
+        return None
+    return (np.zeros((p.n_assets, 0)) if p.B is None else p.B, p.psi)
 
 
 def available_memory() -> float | None:

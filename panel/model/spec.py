@@ -26,6 +26,8 @@ RETURN_SHOCKS = ("diagonal", "factor", "full")
 ESTIMATIONS = ("ml", "bayes")
 #: Stopping rules of the active-set finish (see ``ModelSpec.stopping``).
 STOPPING_RULES = ("gain-model", "gradient")
+#: Where the quasi-Newton finish works (see ``ModelSpec.finish``).
+FINISHES = ("auto", "direct", "filled")
 #: The Bayesian settings (``estimation="bayes"``) and their defaults; an ML spec leaves them out of
 #: :meth:`ModelSpec.to_dict`, so ML settings read and store exactly as before they existed.
 BAYES_DEFAULTS = {"draws": 1000, "chains": 4, "seed": 0, "warmup": None, "priors": None,
@@ -169,8 +171,18 @@ class ModelSpec:
         against 317 on the N=100 benchmark panels, 219 against 188 on the Fama-French 12
         industries); :meth:`from_dict` reads settings without the key (runs stored before it existed) as
         "gradient", so they reproduce exactly.
+    finish : {"auto", "direct", "filled"}
+        Where a panel with gaps (returns missing inside an asset's history) is fitted.  "filled":
+        mostly on a copy with its gaps filled by their conditional means, corrected by exact E-steps
+        to the same optimum (:mod:`panel.model.surrogate`); "direct": on the panel itself; "auto"
+        (default): "filled" when the gaps are at most 10% of every asset's span and the filled
+        copy's E-step is estimated 10x cheaper (measured on an N=100, T=600 panel with 2% gaps:
+        11 s against 139 s, the log-likelihood 3e-4 apart, both converged).  Panels without gaps
+        are fitted directly either way.  :meth:`from_dict` reads settings without the key (runs
+        stored before it existed) as "direct", so they reproduce exactly.
     max_iter : int
-        Maximum EM iterations (E-steps).
+        Maximum EM iterations (E-steps; with ``finish`` on the filled copy, its E-steps and the
+        exact passes on the panel together).
     time_budget : float or None
         Seconds; a fit stopped by it has status ``time_budget``.
     acceleration : {"quasi-newton", "squarem", "none"}
@@ -225,6 +237,7 @@ class ModelSpec:
     starts: int = 1
     loglik_tol: float | None = 1e-4
     stopping: str = "gain-model"
+    finish: str = "auto"
     estimation: str = "ml"
     draws: int = BAYES_DEFAULTS["draws"]
     chains: int = BAYES_DEFAULTS["chains"]
@@ -273,6 +286,8 @@ class ModelSpec:
         data.setdefault("loglik_tol", None)
         # ... and the projected-gradient stopping rule of the active-set finish.
         data.setdefault("stopping", "gradient")
+        # ... and the finish on the panel itself.
+        data.setdefault("finish", "direct")
         for key, kind in (("premium_prior", Prior), ("return_prior", Prior),
                           ("initial_premium", InitialPremium), ("vol_scale", VolScale)):
             if data.get(key) is not None and not isinstance(data[key], kind):
@@ -341,6 +356,8 @@ class ModelSpec:
             raise SpecError("max_iter must be >= 1 and tol > 0")
         if self.stopping not in STOPPING_RULES:
             raise SpecError(f"stopping must be one of {', '.join(STOPPING_RULES)}, got {self.stopping!r}")
+        if self.finish not in FINISHES:
+            raise SpecError(f"finish must be one of {', '.join(FINISHES)}, got {self.finish!r}")
         if self.loglik_tol is not None and not (self.loglik_tol > 0 and math.isfinite(self.loglik_tol)):
             raise SpecError(f"loglik_tol must be a positive number of log-likelihood units (or None for the "
                             f"legacy finish), got {self.loglik_tol}")
