@@ -161,7 +161,9 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
             status = inner_status
             break
         if inner_obj - base < spec.loglik_tol:
-            status = "converged"        # the exact stopping rule holds at p (module docstring)
+            # the exact stopping rule holds at p (module docstring); a finish whose line search
+            # found no increase says so, as the direct finish would
+            status = "converged" if inner_status == "converged" else "stalled"
             break
         theta1 = packer.pack(p1)
         for frac in FRACTIONS:
@@ -173,11 +175,13 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
                 break
         else:       # the surrogate misleads here: the direct finish from the best point
             return _direct(prob, p, e, obj, count, setup, trace, elapsed, time_left)
-    message = (f"converged after {total()} E-steps ({count['exact']} exact passes on the panel, "
-               f"{count['cheap']} on its gap-filled copy; finish on the filled panel)"
-               if status == "converged" else
-               (f"stopped by the time budget of {spec.time_budget:g} s" if status == "time_budget"
-                else f"stopped after {total()} E-steps without meeting the tolerance"))
+    counts = (f"{count['exact']} exact passes on the panel, {count['cheap']} on its gap-filled "
+              "copy; finish on the filled panel")
+    message = {"converged": f"converged after {total()} E-steps ({counts})",
+               "stalled": f"stopped after {total()} E-steps ({counts}): the finish's line search "
+                          "found no further increase; result kept at the best point",
+               "time_budget": f"stopped by the time budget of {spec.time_budget or 0:g} s ({counts})",
+               }.get(status, f"stopped after {total()} E-steps without meeting the tolerance ({counts})")
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=total(), status=status,
                      message=message, trace=tuple(trace))
 

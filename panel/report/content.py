@@ -200,11 +200,16 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
                                    else f"{100 * priors['return_vol']:g}% a year")))
         return lines
     finish = ("" if spec.acceleration != "quasi-newton" else ", legacy finish"
-              if spec.loglik_tol is None else f", finish to {spec.loglik_tol:g} log-lik ({spec.stopping})")
+              if spec.loglik_tol is None else f", finish to {spec.loglik_tol:g} log-lik ({spec.stopping}"
+              f"{_GAPS_ROUTE[spec.finish]})")
     lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
                                 f"{spec.tol:g}/{spec.param_tol:g}{finish}, {spec.starts} start(s), std "
                                 f"errors {spec.std_errors}, path {spec.method}"))
     return lines
+
+
+#: How the settings line names ``ModelSpec.finish`` (panel.model.surrogate).
+_GAPS_ROUTE = {"direct": "", "auto": ", gaps: on a filled copy where cheaper", "filled": ", gaps: on a filled copy"}
 
 
 def parameter_rows(content: ReportContent) -> pd.DataFrame:
