@@ -157,3 +157,18 @@ def test_settings_stored_without_finish_fit_on_the_panel_itself():
     assert ModelSpec().finish == "auto"
     with pytest.raises(panel.SpecError, match="finish must be one of"):
         _problem("gaps_2", ModelSpec(finish="sometimes"))
+
+
+def test_filled_finish_budget_and_fallback(industries_with_holes, monkeypatch):
+    base = dict(premium_factors=1, std_errors="never")
+    short = panel.fit(industries_with_holes, panel.ModelSpec(finish="filled", max_iter=30, **base))
+    assert short.status == "max_iter" and "gap-filled copy" in short.message
+    assert short.n_iter <= 31
+    # with no outer steps allowed, the direct finish takes over from the filled copy's optimum
+    monkeypatch.setattr(surrogate, "MAX_OUTER", 0)
+    res = panel.fit(industries_with_holes, panel.ModelSpec(finish="filled", **base))
+    direct = panel.fit(industries_with_holes, panel.ModelSpec(finish="direct", **base))
+    assert "finish on the panel itself" in res.message
+    assert abs(res.loglik - direct.loglik) < 1e-4
+    obj = res.trace["objective"].to_numpy()
+    assert np.all(np.diff(obj) >= 0)

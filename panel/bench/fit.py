@@ -31,6 +31,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import re
 import subprocess
 import sys
 import time
@@ -217,7 +218,7 @@ def run_task(task: dict) -> dict:
             row["alt_finish"] = "direct" if row["finish"] == "filled" else "filled"
             alt = _ours(frame, task["time_budget"], want_iteration=False, finish=row["alt_finish"])
             row.update({f"alt_{key}": alt[key] for key in
-                        ("fit_s", "fit_esteps", "fit_loglik", "fit_status")})
+                        ("fit_s", "fit_esteps", "fit_loglik", "fit_status", "fit_message")})
     row["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
     return row
 
@@ -343,11 +344,15 @@ def format_table(res: dict) -> str:
                   f"{'N':>4} {'T':>5} {'pattern':<10} {'auto':<7} {'other':<7} {'other_s':>9} "
                   f"{'E-steps':>8} {'status':<12} {'direct/filled':>13} {'loglik filled-direct':>20}"]
         for r in gaps:
+            split = re.search(r"(\d+) exact passes on the panel, (\d+) on its gap-filled copy",
+                              r["fit_message"] if r["finish"] == "filled" else r.get("alt_fit_message", ""))
             t = {r["finish"]: r["fit_s"], r["alt_finish"]: r["alt_fit_s"]}
             ll = {r["finish"]: r["fit_loglik"], r["alt_finish"]: r["alt_fit_loglik"]}
             lines.append(f"{_head(r)} {r['finish']:<7} {r['alt_finish']:<7} {r['alt_fit_s']:>9.2f} "
                          f"{r['alt_fit_esteps']:>8d} {r['alt_fit_status']:<12} "
-                         f"{t['direct'] / t['filled']:>13.1f} {ll['filled'] - ll['direct']:>20.1e}")
+                         f"{t['direct'] / t['filled']:>13.1f} {ll['filled'] - ll['direct']:>20.1e}"
+                         + (f"  (filled: {split[1]} exact passes + {split[2]} E-steps on the copy)"
+                            if split else ""))
     if res.get("ragged"):
         lines += ["(d) ragged E-steps (auto path) vs our balanced E-step and statsmodels' smoother, "
                   "one process per N",
