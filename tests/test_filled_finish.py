@@ -147,6 +147,8 @@ def test_route_is_taken_for_sparse_gaps_only():
     assert not surrogate.route(many, "auto") and surrogate.route(many, "filled")
     dense = _problem("gaps_2", ModelSpec(method="dense"))          # the filled copy no cheaper
     assert not surrogate.route(dense, "auto")
+    two = _problem("gaps_2", ModelSpec(premium_factors=2))          # several local optima
+    assert not surrogate.route(two, "auto") and surrogate.route(two, "filled")
     small = _problem("gaps_2", N=10, T=120)                        # its exact E-step is quick
     assert not surrogate.route(small, "auto") and surrogate.route(small, "filled")
 

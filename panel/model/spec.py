@@ -175,8 +175,10 @@ class ModelSpec:
         Where a panel with gaps (returns missing inside an asset's history) is fitted.  "filled":
         mostly on a copy with its gaps filled by their conditional means, corrected by exact E-steps
         to the same optimum (:mod:`panel.model.surrogate`); "direct": on the panel itself; "auto"
-        (default): "filled" when the gaps are at most 10% of every asset's span and the filled
-        copy's E-step is estimated 10x cheaper and the exact one is expensive (measured on N=100,
+        (default): "filled" when the gaps are at most 10% of every asset's span, the filled
+        copy's E-step is estimated 10x cheaper, the exact one is expensive, and there is at most
+        one premium and one return factor (more have several local optima, which the two routes
+        can reach differently; :func:`panel.model.surrogate.route`) (measured on N=100,
         T=600 panels with 0.5% and 2% gaps: 8.2 s and 9.9 s against 140 s and 144 s, the
         log-likelihoods 6e-5 and 3e-4 apart, both converged).  Panels without gaps
         are fitted directly either way.  :meth:`from_dict` reads settings without the key (runs
