@@ -10,7 +10,7 @@ from scipy import optimize
 
 import panel
 from panel.bench.fit import simulate
-from panel.kalman.gapfill import fill_gaps, interior_gaps
+from panel.kalman.gapfill import LATE, fill_gaps, fillable, interior_gaps
 from panel.model import mstep as ms, surrogate
 from panel.model.problem import Problem
 from panel.model.spec import ModelSpec
@@ -18,7 +18,7 @@ from panel.model.start import starting_values
 from tests.ssm_reference import ExactLocalLevel, statsmodels_smoother
 
 
-def test_interior_gaps_are_inside_each_history():
+def test_gaps_are_inside_each_history_or_late():
     nan = np.nan
     Y = np.array([[nan, 1.0, 1.0],
                   [1.0, nan, 1.0],
@@ -29,6 +29,13 @@ def test_interior_gaps_are_inside_each_history():
                          [1, 0, 0],
                          [0, 0, 0]], bool)     # before entry, after the last return: not gaps
     np.testing.assert_array_equal(interior_gaps(Y), expected)
+    late = np.full((LATE + 3, 3), 1.0)
+    late[-LATE:, 0] = np.nan            # its last LATE returns not yet published: fillable
+    late[-LATE - 1:, 1] = np.nan        # one more: the asset has left, never filled
+    late[0, 2] = np.nan                 # not entered yet: never filled
+    want = np.zeros(late.shape, bool)
+    want[-LATE:, 0] = True
+    np.testing.assert_array_equal(fillable(late), want)
 
 
 def test_fill_gaps_is_the_conditional_mean_from_statsmodels_smoother():

@@ -38,7 +38,7 @@ import time
 
 import numpy as np
 
-from panel.kalman.gapfill import interior_gaps
+from panel.kalman.gapfill import fillable
 
 #: Ragged patterns applied to the balanced panel's draws (so ratios compare like with like):
 #: staircase entries over the first half; exits (10% of the assets leave, spread over the second
@@ -212,7 +212,7 @@ def run_task(task: dict) -> dict:
         row["em_ratio"] = None if row["dfmq_iter_s"] is None else row["dfmq_iter_s"] / row["em_iter_s"]
     else:                                   # scale and ragged_fit rows: our fit alone
         row.update(_ours(frame, task["time_budget"], want_iteration=False))
-        if task["kind"] == "ragged_fit" and interior_gaps(Y).any():
+        if task["kind"] == "ragged_fit" and fillable(Y).any():
             # the other finish on the same panel, in this process
             row["finish"] = "filled" if "gap-filled" in row["fit_message"] else "direct"
             row["alt_finish"] = "direct" if row["finish"] == "filled" else "filled"

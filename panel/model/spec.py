@@ -172,7 +172,8 @@ class ModelSpec:
         industries); :meth:`from_dict` reads settings without the key (runs stored before it existed) as
         "gradient", so they reproduce exactly.
     finish : {"auto", "direct", "filled"}
-        Where a panel with gaps (returns missing inside an asset's history) is fitted.  "filled":
+        Where a panel with gaps (returns missing inside an asset's history, or not yet published
+        at the last one to three dates: :func:`panel.kalman.gapfill.fillable`) is fitted.  "filled":
         mostly on a copy with its gaps filled by their conditional means, corrected by exact E-steps
         to the same optimum (:mod:`panel.model.surrogate`); "direct": on the panel itself; "auto"
         (default): "filled" when the gaps are at most 10% of every asset's span, the filled

@@ -1,7 +1,8 @@
 """The fit of a panel with gaps on its gap-filled copy: the same optimum, to the finish's
 tolerance, for a few exact E-steps.
 
-A panel with gaps (returns missing inside an asset's history, :mod:`panel.kalman.gapfill`) changes
+A panel with gaps (returns missing inside an asset's history, or not yet published at its last
+dates: :func:`panel.kalman.gapfill.fillable`) changes
 its observed set at nearly every date, so its exact E-step takes the dense filter step there: 100 to
 250 times a balanced E-step.  The same panel with its gaps filled by their conditional means is
 balanced (or ragged only by entries and exits) and takes the fast exact paths.  Its log-likelihood
@@ -38,7 +39,7 @@ import time
 import numpy as np
 
 from panel.kalman import paths
-from panel.kalman.gapfill import fill_gaps, interior_gaps
+from panel.kalman.gapfill import fill_gaps, fillable
 from panel.model import em, mstep as ms
 from panel.model.em import EMOutcome, run_em
 
@@ -74,15 +75,14 @@ def route(prob, finish: str) -> bool:
     if (spec.acceleration != "quasi-newton" or spec.loglik_tol is None
             or (prob.rs.max_sigma_diag is not None and prob.rs.k > 0)):
         return False                      # the corrected surrogate needs the active-set finish
-    gaps = interior_gaps(prob.Y)
+    gaps = fillable(prob.Y)
     if not gaps.any():
         return False
     if finish == "filled":
         return True
     if prob.rs.k > 1 or prob.rs.r > 1:
         return False                      # several local optima: keep the direct route's path
-    obs = ~np.isnan(prob.Y)
-    span = obs.shape[0] - obs.argmax(axis=0) - obs[::-1].argmax(axis=0)
+    span = prob.Y.shape[0] - (~np.isnan(prob.Y)).argmax(axis=0)       # from each asset's entry
     if np.max(gaps.sum(axis=0) / span) > MAX_GAP_SHARE:
         return False
     filled = np.where(gaps, 0.0, prob.Y)
