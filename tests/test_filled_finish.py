@@ -87,7 +87,7 @@ def test_filled_finish_matches_statsmodels_on_nile_with_missing_years(nile_with_
     assert res.params.q[0] == pytest.approx(eta, rel=0.02)
     obj = res.trace["objective"].to_numpy()
     assert np.all(np.diff(obj) > 0)             # exact objectives only, each step an increase
-    direct = panel.fit(nile_with_gaps, panel.ModelSpec(std_errors="never"))   # too small for auto
+    direct = panel.fit(nile_with_gaps, panel.ModelSpec(std_errors="never", finish="auto"))  # too small
     assert "gap-filled" not in direct.message
     assert direct.params.q[0] == pytest.approx(eta, rel=1e-4)
 
@@ -163,7 +163,7 @@ def test_route_is_taken_for_sparse_gaps_only():
 def test_settings_stored_without_finish_fit_on_the_panel_itself():
     spec = ModelSpec.from_dict({k: v for k, v in ModelSpec().to_dict().items() if k != "finish"})
     assert spec.finish == "direct"
-    assert ModelSpec().finish == "auto"
+    assert ModelSpec().finish == "direct"
     with pytest.raises(panel.SpecError, match="finish must be one of"):
         _problem("gaps_2", ModelSpec(finish="sometimes"))
 
