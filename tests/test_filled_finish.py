@@ -181,3 +181,16 @@ def test_filled_finish_budget_and_fallback(industries_with_holes, monkeypatch):
     assert abs(res.loglik - direct.loglik) < 1e-4
     obj = res.trace["objective"].to_numpy()
     assert np.all(np.diff(obj) >= 0)
+
+
+def test_cli_gaps_option_fits_on_the_filled_copy(cli_store):
+    import json
+
+    from tests.cli_helpers import CLI_FIT_OPTIONS
+
+    done = cli_store.invoke("fit", "--data", "trees", *CLI_FIT_OPTIONS, "--gaps", "filled", "--json")
+    assert done.exit_code == 0, done.output
+    assert "gap-filled copy" in json.loads(done.stdout)["message"]
+    refused = cli_store.invoke("fit", "--data", "trees", "--bayes", "--gaps", "filled")
+    assert refused.exit_code == 1 and "applies to ML estimation only" in refused.output
+    assert cli_store.invoke("fit", "--data", "trees", "--gaps", "sometimes").exit_code == 2

@@ -470,6 +470,9 @@ def _check_estimation(spec: "ModelSpec") -> None:
             raise SpecError(f"{name} (--{name.replace('_', '-')}) is a prior of ML estimation; with "
                             "estimation='bayes' state priors with priors=Priors(...) (--prior "
                             "NAME=VALUE) instead")
+    if spec.finish != "direct":
+        raise SpecError("finish (--gaps) applies to ML estimation only; drop it for estimation='bayes' "
+                        "(each Gibbs sweep already works on the panel itself)")
     if spec.starts != 1 or spec.time_budget is not None:
         raise SpecError("starts and time_budget apply to ML estimation only; drop them for "
                         "estimation='bayes' (several chains guard against a poor start)")
