@@ -6,15 +6,14 @@ gap fill against statsmodels' smoother, and when the route is taken."""
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import optimize
 
 import panel
 from panel.bench.fit import simulate
 from panel.kalman.gapfill import LATE, fill_gaps, fillable, interior_gaps
-from panel.model import mstep as ms, surrogate
+from panel.model import surrogate
 from panel.model.problem import Problem
 from panel.model.spec import ModelSpec
-from panel.model.start import starting_values
+from tests.scipy_reference import lbfgsb_objective
 from tests.ssm_reference import ExactLocalLevel, statsmodels_smoother
 
 
@@ -78,7 +77,7 @@ def test_filled_finish_matches_statsmodels_on_nile_with_missing_years(nile_with_
     # likelihood is so flat in the level variance that 1e-4 of log-likelihood allows about 1% of it
     # (measured: 4e-5 and 0.7%, against a standard error of about 50%).
     res = panel.fit(nile_with_gaps, panel.ModelSpec(finish="filled", std_errors="never"))
-    assert "gap-filled copy" in res.message and res.converged
+    assert "finish on the filled panel" in res.message and res.converged   # not the fallback
     mod = ExactLocalLevel(nile_with_gaps.values["Nile"].to_numpy())
     ref = mod.fit(disp=False, method="bfgs", maxiter=500, gtol=1e-10)
     eps, eta = ref.params
@@ -117,19 +116,9 @@ def test_filled_finish_reaches_the_exact_optimum_on_industries(industries_with_h
                 premium_prior=panel.Prior(vol=0.24, weight=24))
     filled = panel.fit(data, panel.ModelSpec(finish="filled", **base))
     direct = panel.fit(data, panel.ModelSpec(finish="direct", **base))
-    assert "gap-filled copy" in filled.message and "gap-filled" not in direct.message
-    prob = Problem(data, panel.ModelSpec(**base))
-    p0 = starting_values(prob.Y, prob.rs)
-
-    def negll(th):
-        p = prob.packer.unpack(th, p0)
-        e = prob.estep(p)
-        g = ms.expected_complete_loglik_grad(e, p, prob.rs, prob.packer, prob.sigma_prior, prob.h_prior)
-        return -prob.objective(e, p), -g
-
-    opt = optimize.minimize(negll, prob.packer.pack(p0), jac=True, method="L-BFGS-B",
-                            options={"maxiter": 3000, "ftol": 1e-15, "gtol": 1e-10})
-    assert filled.objective >= -opt.fun - 1e-6 * abs(opt.fun)
+    assert "finish on the filled panel" in filled.message and "gap-filled" not in direct.message
+    best = lbfgsb_objective(data, panel.ModelSpec(**base))
+    assert filled.objective >= best - 1e-6 * abs(best)
     assert abs(filled.objective - direct.objective) < 1e-4         # both within loglik_tol
     np.testing.assert_allclose(filled.params.Sigma, direct.params.Sigma, rtol=0.02,
                                atol=1e-3 * np.abs(direct.params.Sigma).max())
@@ -191,6 +180,9 @@ def test_cli_gaps_option_fits_on_the_filled_copy(cli_store):
     done = cli_store.invoke("fit", "--data", "trees", *CLI_FIT_OPTIONS, "--gaps", "filled", "--json")
     assert done.exit_code == 0, done.output
     assert "gap-filled copy" in json.loads(done.stdout)["message"]
+    before = cli_store.digest()
     refused = cli_store.invoke("fit", "--data", "trees", "--bayes", "--gaps", "filled")
     assert refused.exit_code == 1 and "applies to ML estimation only" in refused.output
+    assert len(refused.output.strip().splitlines()) == 1
     assert cli_store.invoke("fit", "--data", "trees", "--gaps", "sometimes").exit_code == 2
+    assert cli_store.digest() == before                           # nothing written
