@@ -18,21 +18,26 @@ from panel.model.spec import SpecError
 def _nile():
     import statsmodels.api as sm
 
-    return sm.datasets.nile.load_pandas().data["volume"].to_numpy(dtype=float)
+    return sm.datasets.nile.load_pandas().data["volume"].to_numpy(dtype=float, copy=True)
 
 
 def _ig_logpdf(x, a, b):
     return -(a + 1.0) * np.log(x) - b / x
 
 
-def test_nile_posterior_matches_grid_integration():
+@pytest.mark.parametrize("missing", [False, True])
+def test_nile_posterior_matches_grid_integration(missing):
     """Conjugate single-series local level with inverse-gamma priors on both variances: the
     sampler's posterior means, sds and 5/95% quantiles of (q, h) against numerical integration
     of statsmodels' exact diffuse log-likelihood (UnobservedComponents 'llevel',
-    use_exact_diffuse=True) times the prior on a 90 x 70 log grid."""
+    use_exact_diffuse=True) times the prior on a 90 x 70 log grid.  ``missing``: the years
+    21-40 and 61-80 removed, as in Durbin & Koopman's (2012, sec. 2.7) missing-observations
+    example; the sampler draws them (data augmentation) and must still match the grid."""
     import statsmodels.api as sm
 
     y = _nile()
+    if missing:
+        y[20:40] = y[60:80] = np.nan
     # ppy = 1 (annual data): premium vol V = sqrt(q); prior medians near the ML values of
     # Durbin & Koopman (2012, ch. 2): q = 1469, h = 15099.
     priors = Priors(premium_vol_family="invgamma", premium_vol=np.sqrt(1500.0),
@@ -63,7 +68,8 @@ def test_nile_posterior_matches_grid_integration():
         for p in (0.05, 0.95):
             grid_q = np.interp(p, cdf, values)          # grid steps are 8% (q) and 3% (h) apart
             assert abs(np.quantile(flat, p) / grid_q - 1.0) < 0.08, (p, np.quantile(flat, p), grid_q)
-    assert res.settings["path_route"] == "spectral"
+    assert res.settings["path_route"] == "spectral"       # the filled series is balanced
+    assert res.settings["gap_cells"] == (40 if missing else 0)
 
 
 def test_all_variances_fixed_reproduces_the_smoother():

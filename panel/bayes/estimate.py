@@ -60,7 +60,7 @@ def fit_bayes(prob: Problem, start: Params | None = None, progress=None) -> Pane
                  fixed_psi=None if rs.fixed_psi is None else np.array(rs.fixed_psi),
                  max_sigma_diag=rs.max_sigma_diag,
                  scale2=None if spec.vol_scale is None else prob.s2, init=prob.init, start=start,
-                 method=spec.method, n_summary=spec.summary_draws,
+                 method=spec.method, n_summary=spec.summary_draws, augment_gaps=spec.augment_gaps,
                  progress=None if progress is None else tick)
     p = posterior_mean_params(res)
     loglik = float(prob.estep(p).loglik)

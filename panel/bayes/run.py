@@ -69,7 +69,7 @@ def sample(data, *, ppy: int | None = None, k: int | None = None, structure: str
            seed: int = 0, warmup: int | None = None, fixed_q=None, fixed_psi=None,
            max_sigma_diag: float | None = None, scale2=None, init=None,
            start: Params | None = None, method: str = "auto", n_summary: int = 100,
-           progress=None) -> BayesResult:
+           augment_gaps: bool = True, progress=None) -> BayesResult:
     """Sample the posterior of the premium panel by Gibbs (DESIGN §3a).
 
     Parameters
@@ -92,6 +92,11 @@ def sample(data, *, ppy: int | None = None, k: int | None = None, structure: str
     start : Params to start every chain from (dispersed per chain); None: the ML fit's moment rule.
     method : E-step path for the mean-correction draws and the summaries (``paths.METHODS``).
     n_summary : parameter draws at which the filter and smoother are run for the summaries.
+    augment_gaps : draw the panel's gaps (returns missing inside an asset's history, or not yet
+        published at its last one to three dates) as part of the chain, so that each sweep runs
+        on a panel without them (:mod:`panel.bayes.sampler`, step 5): the same posterior, each
+        sweep as cheap as on a balanced panel.  False: every sweep integrates them out on the
+        panel's exact path (dense at the gap dates).
     progress : optional ``callable(n)`` called with 1 after every sweep.
     """
     t0 = time.perf_counter()
@@ -123,7 +128,7 @@ def sample(data, *, ppy: int | None = None, k: int | None = None, structure: str
     rs = resolved_model(rs0.k, rs0.structure, rs0.r, ppy, fq, fp, max_sigma_diag)
     priors = priors or Priors()
     prior = priors.resolve(Y, ppy, rs.structure)
-    gibbs = Gibbs(Y, s2, init, rs, prior, method)
+    gibbs = Gibbs(Y, s2, init, rs, prior, method, augment=bool(augment_gaps))
 
     t_sample = time.perf_counter()
     children = np.random.SeedSequence(seed).spawn(chains)
@@ -145,6 +150,7 @@ def sample(data, *, ppy: int | None = None, k: int | None = None, structure: str
     settings = {"draws": draws, "chains": chains, "warmup": warmup, "seed": seed,
                 "n_summary": int(len(picks)), "fixed_q": _json_list(fq), "fixed_psi": _json_list(fp),
                 "max_sigma_diag": max_sigma_diag, "method": method, "path_route": gibbs.paths.route,
+                "augment_gaps": bool(augment_gaps), "gap_cells": int(gibbs.gap_at[0].size),
                 "summary_method": plan.method, "init": None if init is None else list(map(float, init)),
                 "scale2_given": scale2 is not None}
     return BayesResult(

@@ -10,7 +10,15 @@ One sweep at parameters ``theta = (Lambda, q, H)``:
 4. premium parameters centred (``Lambda_i``, ``q_i`` from ``w`` on ``eta``), a scale move of
    (``f``, ``Lambda``) (and of (``g``, ``B``) in step 3), then non-centred
    (:func:`panel.bayes.conditionals.premium_noncentred`); with a full ``H`` the non-centred step
-   goes asset by asset, each given the others' shocks.
+   goes asset by asset, each given the others' shocks;
+5. with ``augment=True``, the panel's gaps (:func:`panel.kalman.gapfill.fillable`: returns
+   missing inside an asset's history or not yet published at its last dates) are part of the
+   chain's state, drawn from ``y_gap | mu, shocks, theta, Y`` (data augmentation, Tanner & Wong
+   1987).  Steps 1-4 then see a panel without gaps, so step 1 takes the fast balanced (or
+   stretch) path instead of the dense one; the posterior is the same.  For a factor ``H`` the
+   draw is ``mu + s (g B' + sqrt(psi) e)`` given this sweep's ``g``; steps 1 and 3 together
+   draw ``(mu, g)`` jointly, so the sweep is a valid blocked Gibbs sampler.  Panels without
+   gaps consume the same random numbers either way.
 
 Loadings are sampled unrestricted (their prior is rotation invariant) and recorded in the
 identified rotation (``panel.model.params.canonical_loadings``).  Chains are seeded by
@@ -25,6 +33,7 @@ import numpy as np
 
 from panel.bayes import conditionals as cd
 from panel.bayes.priors import ResolvedPriors
+from panel.kalman.gapfill import fillable
 from panel.kalman.simsmooth import PathSampler
 from panel.model import mstep
 from panel.model.params import Params, canonical_loadings
@@ -47,6 +56,7 @@ class ChainState:
     psi: np.ndarray | None
     B: np.ndarray | None
     H: np.ndarray | None
+    fill: np.ndarray = None     # (m,) current values of the gap cells (data augmentation)
 
     def params(self, structure: str) -> Params:
         if structure == "full":
@@ -59,17 +69,24 @@ class Gibbs:
 
     Y (T, N) decimal returns per period with NaN; s2 (T,) squared volatility scale; init the
     informative entry prior ``(m0, v0)`` or None; rs the resolved model (k, structure, r, fixed
-    variances, cap); prior the :class:`ResolvedPriors`; method the E-step path.
+    variances, cap); prior the :class:`ResolvedPriors`; method the E-step path; augment draws
+    the gap cells as part of the state (step 5 above).  ``obs`` is the mask the sweep treats as
+    observed (returns and gap cells), ``seen`` the returns alone.
     """
 
-    def __init__(self, Y, s2, init, rs: ResolvedSpec, prior: ResolvedPriors, method="auto"):
+    def __init__(self, Y, s2, init, rs: ResolvedSpec, prior: ResolvedPriors, method="auto",
+                 augment: bool = True):
         self.Y = np.asarray(Y, dtype=float)
         T, N = self.Y.shape
         self.s2 = np.asarray(s2, dtype=float)
         self.s = np.sqrt(self.s2)
         self.init = init
         self.rs, self.prior = rs, prior
-        self.paths = PathSampler(self.Y, self.s2, init, method)
+        self.seen = ~np.isnan(self.Y)
+        self.gaps = fillable(self.Y) if augment else np.zeros_like(self.seen)
+        self.gap_at = np.nonzero(self.gaps)
+        self.gap_dates = np.flatnonzero(self.gaps.any(axis=1))
+        self.paths = PathSampler(np.where(self.gaps, 0.0, self.Y), self.s2, init, method)
         self.obs = self.paths.obs
         self.entry = self.paths.entry
         self.active = self.paths.active
@@ -94,12 +111,41 @@ class Gibbs:
             lam, q = mstep.cap_premium(lam, q, rs.max_sigma_diag * (1 - 1e-9), self.free_q)
         if rs.structure == "full":
             d = np.exp(0.15 * rng.standard_normal(N))         # variances scaled by exp(N(0, 0.3^2))
-            return ChainState(lam, q, None, None, np.array(p.H) * np.outer(d, d))
+            return ChainState(lam, q, None, None, np.array(p.H) * np.outer(d, d), self._first_fill())
         psi = np.where(self.free_psi, np.array(p.psi) * np.exp(0.3 * rng.standard_normal(N)),
                        np.array(p.psi))
         B = None if rs.structure == "diagonal" else (
             np.array(p.B) * np.exp(l_spread * rng.standard_normal((N, 1))))
-        return ChainState(lam, q, psi, B, None)
+        return ChainState(lam, q, psi, B, None, self._first_fill())
+
+    def _first_fill(self) -> np.ndarray:
+        """Gap cells start at their asset's mean return (any start is valid; warm-up forgets it)."""
+        return np.nanmean(self.Y, axis=0)[self.gap_at[1]]
+
+    def _panel(self, st: ChainState) -> np.ndarray:
+        """The returns with the gap cells at the chain's current values."""
+        if not self.gap_dates.size:
+            return self.Y
+        Y = self.Y.copy()
+        Y[self.gap_at] = st.fill
+        return Y
+
+    def _draw_gaps(self, st: ChainState, mu, common, rng) -> np.ndarray:
+        """(m,) gap cells drawn from ``y_gap | mu, theta, Y`` (and the return factors' part
+        ``common = s^-1 (g B')`` (T, N) for a factor H): the shock is ``N(0, s_t^2 psi_i)`` given
+        the common part, or, for a full H, the shock given that date's observed shocks."""
+        t, i = self.gap_at
+        if self.rs.structure == "full":
+            d = self.gap_dates
+            u = np.where(self.seen[d], (self.Y[d] - mu[d]) / self.s[d, None], 0.0)
+            shocks = np.zeros_like(self.Y)
+            shocks[d] = cd.impute_shocks(u, self.seen[d], st.H, rng, precision=True)
+            shock = shocks[t, i]
+        else:
+            shock = np.sqrt(st.psi[i]) * rng.standard_normal(t.size)
+            if common is not None:
+                shock = shock + common[t, i]
+        return mu[t, i] + self.s[t] * shock
 
     # ------------------------------------------------------------------ one sweep
     def sweep(self, st: ChainState, rng: np.random.Generator) -> np.ndarray:
@@ -108,6 +154,9 @@ class Gibbs:
         rs, pr = self.rs, self.prior
         T, N = self.Y.shape
         k = rs.k
+        Y = self._panel(st)
+        if self.gap_dates.size:
+            self.paths.refill(Y)
         p = st.params(rs.structure)
         h_parts = None if rs.structure == "full" else (
             np.zeros((N, 0)) if st.B is None else st.B, st.psi)
@@ -115,20 +164,22 @@ class Gibbs:
         w = np.nan_to_num(np.diff(mu, axis=0))
         eta = cd.factor_innovations(w, self.act, st.Lambda, st.q, rng) if k else np.zeros((T - 1, 0))
         f = np.vstack([np.zeros((1, k)), np.cumsum(eta, axis=0)])
-        u = np.nan_to_num((self.Y - mu) / self.s[:, None])
+        u = np.nan_to_num((Y - mu) / self.s[:, None])
+        common = None
 
         if rs.structure == "diagonal":
             st.psi = np.where(self.free_psi, cd.idio_variances(u, self.obs, pr.psi_a, pr.psi_b, rng),
                               st.psi)
-            target = self.Y
+            target = Y
         elif rs.structure == "factor":
             g = cd.return_factors(u, self.obs, st.B, st.psi, rng)
             st.B = cd.return_loadings(u, self.obs, g, st.psi, pr.b_sd, rng)
             g, st.B, _ = cd.scale_move(g, st.B, pr.b_sd, rng)
-            resid = u - g @ st.B.T
+            common = g @ st.B.T
+            resid = u - common
             st.psi = np.where(self.free_psi,
                               cd.idio_variances(resid, self.obs, pr.psi_a, pr.psi_b, rng), st.psi)
-            target = self.Y - self.s[:, None] * (g @ st.B.T)
+            target = Y - self.s[:, None] * common
         else:
             u = cd.impute_shocks(u, self.obs, st.H, rng)
             st.H = cd.full_return_cov(u, pr.iw_dof, pr.iw_scale, rng)
@@ -153,11 +204,13 @@ class Gibbs:
                 rs.max_sigma_diag, self.init, rng, self.q_ref)
             mu = c + f @ st.Lambda.T + s_new * X
         else:
-            mu = self._noncentred_full(st, u, f, X, c, rng)
+            mu = self._noncentred_full(st, Y, u, f, X, c, rng)
+        if self.gap_dates.size:
+            st.fill = self._draw_gaps(st, mu, common, rng)
         mu[~self.active] = np.nan
         return mu
 
-    def _noncentred_full(self, st, u, f, X, c, rng):
+    def _noncentred_full(self, st, Y, u, f, X, c, rng):
         """Non-centred step asset by asset with a full H: asset i's shock given the others'
         (complete, imputed) shocks has mean ``u_i - (u P)_i / P_ii`` and variance ``1 / P_ii``
         (``P = H^-1``)."""
@@ -170,14 +223,14 @@ class Gibbs:
         for i in range(N):
             sl = slice(i, i + 1)
             cond_mean = u[:, i] - UP[:, i] / P[i, i]
-            target = (self.Y[:, i] - self.s * cond_mean)[:, None]
+            target = (Y[:, i] - self.s * cond_mean)[:, None]
             weights = np.where(self.obs[:, sl], P[i, i] / self.s2[:, None], 0.0)
             ci, lam[sl], q[sl], si = cd.premium_noncentred(
                 target, weights, f, X[:, sl], self.entry[sl], c[sl], lam[sl], q[sl],
                 self.free_q[sl], pr, rs.max_sigma_diag, self.init, rng, self.q_ref)
             c[i], s_all[i] = ci[0], si[0]
             mu_i = c[i] + f @ lam[i] + s_all[i] * X[:, i]
-            new_u = np.where(self.obs[:, i], (self.Y[:, i] - mu_i) / self.s, u[:, i])
+            new_u = np.where(self.obs[:, i], (Y[:, i] - mu_i) / self.s, u[:, i])
             UP += np.outer(new_u - u[:, i], P[i])
             u[:, i] = new_u
         st.Lambda, st.q = lam, q

@@ -104,6 +104,16 @@ class PathSampler:
             route = "precision" if cheap else "mean-correction"
         self.route = route
 
+    def refill(self, Y: np.ndarray) -> None:
+        """New values for the same observed cells (the gap cells of a data-augmented sampler,
+        :class:`panel.bayes.sampler.Gibbs`): the route and its data-free parts are kept."""
+        Y = np.asarray(Y, dtype=float)
+        if not np.array_equal(~np.isnan(Y), self.obs):
+            raise ValueError("refill needs the same observed cells as the panel the sampler was built on")
+        self.Y = Y
+        if self.route == "spectral":
+            self.ytil = spectral(self.basis, Y)
+
     def draw(self, Sigma, H, rng: np.random.Generator, h_parts=None) -> np.ndarray:
         """(T, N) premium path drawn from ``p(mu | Y)`` at ``(Sigma, H)``; NaN before entry.
 
