@@ -312,6 +312,18 @@ def test_settings_stored_without_stopping_keep_the_gradient_rule():
         panel.fit(frame, panel.ModelSpec(stopping="sometimes"))
 
 
+def test_settings_stored_without_cap_method_keep_the_projection():
+    # Runs stored before the boxed finish under a premium-volatility cap read as "projection", so
+    # they reproduce; a bad value is refused in one line.
+    stored = panel.ModelSpec(max_premium_vol=0.02).to_dict()
+    assert stored["cap_method"] == "box"
+    del stored["cap_method"]
+    assert panel.ModelSpec.from_dict(stored).cap_method == "projection"
+    with pytest.raises(panel.SpecError, match="cap_method must be one of") as error:
+        panel.ModelSpec(cap_method="clip").resolve(3, 12, 40, ("a", "b", "c"))
+    assert "\n" not in str(error.value)
+
+
 def test_variance_started_at_its_floor_is_released_by_its_score():
     # Simulation (invented panel from the model): a warm start with the largest own premium
     # variance pushed below its floor.  EM cannot lift a variance off zero and in the finish's

@@ -53,7 +53,7 @@ class EMOutcome:
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
            bounds=None, extrapolate: bool = True, project=None, progress=None,
-           loglik_tol: float | None = None, stopping: str = "gain-model") -> EMOutcome:
+           loglik_tol: float | None = None, stopping: str = "gain-model", cap=None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
@@ -66,6 +66,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     ``loglik_tol`` (log-likelihood units) selects the active-set finish and its stopping rule
     (:func:`_active_set_finish`); None is the legacy finish (:func:`_quasi_newton`).
     ``stopping`` is the active-set finish's rule ("gain-model" or "gradient", ``ModelSpec.stopping``).
+    ``cap = (cap, q_floor (N,))``: one premium factor under ``Lambda_i^2 + q_i <= cap``; the
+    finish works in coordinates where that bound is a box (:class:`_Coords`).
     """
     accelerate = accelerate and extrapolate
     lo = hi = None
@@ -141,11 +143,11 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             if loglik_tol is None:
                 p, e, obj, n, status, message = _quasi_newton(
                     p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
-                    trace, elapsed)
+                    trace, elapsed, cap)
             else:
                 p, e, obj, n, status, message = _active_set_finish(
                     p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
-                    trace, elapsed, loglik_tol, stopping)
+                    trace, elapsed, loglik_tol, stopping, cap)
             break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
                      trace=tuple(trace))
@@ -195,7 +197,7 @@ def _charge(count: dict, max_iter: int, time_left, spent: float) -> None:
 
 
 def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
-                  trace, elapsed):
+                  trace, elapsed, cap=None):
     """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated.
     The legacy finish (``ModelSpec.loglik_tol=None``, runs stored before it existed).
 
@@ -207,7 +209,7 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
     best = {"p": p, "e": e, "obj": obj}
     count = {"n": n}
     t_start = elapsed()
-    co = _Coords(packer.pack(p), packer, bounds)
+    co = _Coords(packer.pack(p), packer, bounds, cap)
     scale = max(1.0, abs(obj))
 
     def f(x):
@@ -224,7 +226,7 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
         if oo > best["obj"]:
             best.update(p=pp, e=ee, obj=oo)
             trace.append((count["n"], oo, ee.loglik, elapsed(), "quasi-newton"))
-        return -oo / scale, -grad * co.dtheta_dx(x) / scale
+        return -oo / scale, -co.gradient(x, grad) / scale
 
     try:
         res = optimize.minimize(f, co.x0, jac=True, method="L-BFGS-B", bounds=co.xbounds,
@@ -244,9 +246,20 @@ class _Coords:
     deviations ``s = exp(theta / a)`` scaled by their start value.  In logs a variance heading for
     zero is an endless flat road; in ``s`` it reaches its bound in a few steps.  A unit change of
     any ``x`` is thus a change of the parameter by about its own size.
+
+    ``cap = (cap, q_floor)`` with one premium factor: the bound ``Lambda_i^2 + q_i <= cap`` is not
+    a box in ``(Lambda_i, q_i)``, so each asset with a free ``q_i`` gets the coordinates
+    ``x_t = sqrt(t_i / cap)`` in ``[0, sqrt(1 - floor_i / cap)]`` and ``rho_i`` in ``[-1, 1]``, with
+
+        Lambda_i = sqrt(cap) x_t rho,      q_i = floor_i + cap x_t^2 (1 - rho^2)
+
+    (``t_i = Sigma_ii - floor_i``: the cap is ``x_t`` at its top, the own variance at its floor is
+    ``rho = +-1``), in place of its loading and log variance; a fixed ``q_i`` bounds the loading
+    alone, ``|Lambda_i| <= sqrt(cap - q_i)``.  L-BFGS-B handles these bounds itself (they are not
+    pinned or released by the active set).
     """
 
-    def __init__(self, theta0: np.ndarray, packer: Packer, bounds):
+    def __init__(self, theta0: np.ndarray, packer: Packer, bounds, cap=None):
         a = packer.log_power()
         logs = a > 0
         d = np.ones(theta0.size)
@@ -264,23 +277,66 @@ class _Coords:
                 lo = None if lo is None else lo / d[j]
                 hi = None if hi is None else hi / d[j]
             xbounds.append((lo, hi))
-        self.xbounds = xbounds
         self.floored = logs & np.array([b[0] is not None for b in bounds]) if bounds is not None \
             else np.zeros(theta0.size, bool)
-        self.lower = np.array([-np.inf if b[0] is None else b[0] for b in xbounds])
-        self.upper = np.array([np.inf if b[1] is None else b[1] for b in xbounds])
         x0 = theta0 / d
         x0[logs] = 1.0
+        self.pairs = None
+        self.plain = logs.copy()            # log entries mapped one by one
+        if cap is not None:
+            self._cap_box(theta0, packer, *cap, x0, xbounds)
+            self.plain[self.pairs[1]] = False
+        self.xbounds = xbounds
+        self.lower = np.array([-np.inf if b[0] is None else b[0] for b in xbounds])
+        self.upper = np.array([np.inf if b[1] is None else b[1] for b in xbounds])
         self.x0 = np.clip(x0, self.lower, self.upper)
+
+    def _cap_box(self, theta0, packer, cap, floor, x0, xbounds):
+        """Replace each free ``(Lambda_i, log q_i)`` by ``(x_t, rho)`` (class docstring)."""
+        N, n_lam = packer.N, int(packer.lam_free.sum())
+        free = np.flatnonzero(packer.free_q)
+        jl, jq = free, n_lam + np.arange(free.size)        # k = 1: one loading per asset
+        f = np.asarray(floor, float)[free]
+        lam, q = theta0[jl], np.exp(theta0[jq])
+        t = np.clip(lam ** 2 + q - f, 0.0, cap - f)
+        x0[jl] = np.sqrt(t / cap)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            x0[jq] = np.clip(np.where(t > 0, lam / np.sqrt(t), 0.0), -1.0, 1.0)
+        for j, top in zip(jl, np.sqrt(1.0 - f / cap)):
+            xbounds[j] = (0.0, float(top))
+        for j in jq:
+            xbounds[j] = (-1.0, 1.0)
+        self.floored[jq] = False
+        fixed = np.flatnonzero(~packer.free_q)
+        q_fixed = packer.rs.fixed_q
+        for i in fixed:
+            reach = np.sqrt(max(cap - q_fixed[i], 0.0)) / self.d[i]
+            xbounds[i] = (-reach, reach)
+        self.pairs = (jl, jq, np.sqrt(cap), f)
 
     def theta(self, x: np.ndarray) -> np.ndarray:
         theta = x * self.d
-        theta[self.logs] = self.a[self.logs] * np.log(theta[self.logs])
+        plain = self.plain
+        theta[plain] = self.a[plain] * np.log(theta[plain])
+        if self.pairs is not None:
+            jl, jq, c, f = self.pairs
+            xt, rho = x[jl], x[jq]
+            theta[jl] = c * xt * rho
+            theta[jq] = np.log(f + c * c * xt * xt * (1.0 - rho * rho))
         return theta
 
-    def dtheta_dx(self, x: np.ndarray) -> np.ndarray:
-        out = self.d.copy()
-        out[self.logs] = self.a[self.logs] / x[self.logs]
+    def gradient(self, x: np.ndarray, g: np.ndarray) -> np.ndarray:
+        """The objective's gradient in ``x`` from its gradient ``g`` in ``theta`` (chain rule)."""
+        out = self.d * g
+        plain = self.plain
+        out[plain] = self.a[plain] / x[plain] * g[plain]
+        if self.pairs is not None:
+            jl, jq, c, f = self.pairs
+            xt, rho = x[jl], x[jq]
+            q = f + c * c * xt * xt * (1.0 - rho * rho)
+            g_lam, g_logq = g[jl], g[jq]
+            out[jl] = g_lam * c * rho + g_logq * 2.0 * c * c * xt * (1.0 - rho * rho) / q
+            out[jq] = g_lam * c * xt - g_logq * 2.0 * c * c * xt * xt * rho / q
         return out
 
     def at_floor(self, x: np.ndarray) -> np.ndarray:
@@ -328,7 +384,7 @@ class _Converged(Exception):
 
 
 def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
-                       trace, elapsed, loglik_tol, stopping="gain-model"):
+                       trace, elapsed, loglik_tol, stopping="gain-model", cap=None):
     """L-BFGS-B with the Fisher-identity score on the variances not pinned at their floor.
 
     Active set: a variance at its floor whose score (d objective / d log variance, free from the
@@ -361,7 +417,7 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, ma
     scale = max(1.0, abs(obj))
     status = message = None
     for _ in range(MAX_ROUNDS):
-        co = _Coords(packer.pack(best["p"]), packer, bounds)
+        co = _Coords(packer.pack(best["p"]), packer, bounds, cap)
         like = best["p"]
         g0 = score(best["e"], best["p"])
         pinned = co.at_floor(co.x0) & (g0 <= 0)
@@ -381,7 +437,7 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, ma
                 pp = packer.unpack(co.theta(x), like)
                 ee = estep(pp)
                 oo = objective(ee, pp)
-                grad = score(ee, pp) * co.dtheta_dx(x)
+                grad = co.gradient(x, score(ee, pp))
             except (np.linalg.LinAlgError, FloatingPointError):
                 # a trial point whose covariance is not numerically positive definite: worse than
                 # anything seen, so the line search backs off
@@ -427,7 +483,7 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, ma
         # is raised to the median level of its free peers (in s, EM and L-BFGS-B would only creep
         # away from the floor: both steps are proportional to its tiny s), halving towards the
         # floor (in logs) until the objective increases
-        co = _Coords(packer.pack(best["p"]), packer, bounds)
+        co = _Coords(packer.pack(best["p"]), packer, bounds, cap)
         g = score(best["e"], best["p"])
         near = co.floored & (co.x0 <= co.lower * np.sqrt(2.0))
         release = near & (g > 0)

@@ -145,8 +145,10 @@ def check_estimable(Y: np.ndarray, assets, rs) -> None:
 def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
     finish) and the score.  With factors and a premium-volatility cap the bound is not a box:
-    then no quasi-Newton finish, and SQUAREM's extrapolated points are projected onto it by the
-    M-step's own rule (its safeguard keeps the objective monotone)."""
+    SQUAREM's extrapolated points are projected onto it by the M-step's own rule (its safeguard
+    keeps the objective monotone); with one factor (``cap_method="box"``) the finish then works in
+    coordinates where the bound is a box (``cap``, :class:`panel.model.em._Coords`), with more
+    there is no quasi-Newton finish."""
     rs = prob.rs
     logvar = prob.packer.log_variance_mask()
     n_lam = int(prob.packer.lam_free.sum())
@@ -165,18 +167,20 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     bounds = [(None if not np.isfinite(lo) else lo, None if not np.isfinite(hi) else hi)
               for lo, hi in zip(low, high)]
 
+    def score(e, p):
+        return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
+
+    qn = prob.spec.acceleration == "quasi-newton"
     if rs.max_sigma_diag is not None and rs.k > 0:
         free_q = prob.packer.free_q
 
         def project(p):
             lam, q = ms.cap_premium(p.Lambda, p.q, rs.max_sigma_diag, free_q)
             return Params(Lambda=lam, q=q, H=p.H, B=p.B, psi=p.psi)
+        if rs.k == 1 and prob.spec.cap_method == "box" and prob.spec.loglik_tol is not None:
+            return {"score": score if qn else None, "bounds": bounds, "project": project,
+                    "cap": (rs.max_sigma_diag, floor)}
         return {"bounds": bounds, "project": project}
-
-    def score(e, p):
-        return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
-
-    qn = prob.spec.acceleration == "quasi-newton"
     return {"score": score if qn else None, "bounds": bounds}
 
 
