@@ -228,8 +228,8 @@ class ModelSpec:
         summaries (bands, P(premium > 0), cross-sections).
     augment_gaps : Bayes: draw the gaps (as ``finish`` defines them) as part of the chain (data
         augmentation), so each sweep costs what it costs on a panel without them; the posterior is
-        the same.  Measured on N=100, T=600 with 2% gaps: about 35x cheaper sweeps (see the
-        benchmark ``python -m panel.bench.bayes``).  False integrates them out in every sweep (the
+        the same.  Measured on N=100, T=600 with 2% gaps: 11 ms a sweep against 496 ms, the
+        same median ESS (benchmark ``python -m panel.bench.bayes``).  False integrates them out in every sweep (the
         exact dense path at the gap dates).  :meth:`from_dict` reads Bayesian settings without
         the key as False, so stored runs reproduce bit for bit.
     method : {"auto", "dense", "stretch", "balanced"}
