@@ -3,6 +3,8 @@ outside references (statsmodels' exact diffuse local level on the Nile data with
 missing years; scipy.optimize on the exact likelihood of Fama-French industries with holes), the
 gap fill against statsmodels' smoother, and when the route is taken."""
 
+import dataclasses
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -124,6 +126,25 @@ def test_filled_finish_reaches_the_exact_optimum_on_industries(industries_with_h
                                atol=1e-3 * np.abs(direct.params.Sigma).max())
     np.testing.assert_allclose(filled.params.H, direct.params.H, rtol=1e-3,
                                atol=1e-4 * np.abs(direct.params.H).max())
+
+
+def test_filled_finish_under_a_premium_volatility_cap(industries_with_holes):
+    # One premium factor, a factor H and a cap at the median uncapped premium volatility: the
+    # filled route keeps the cap in its boxed finish and reaches the direct route's optimum (whose
+    # boxed finish is checked against scipy.optimize in test_engine_estimation.py; scipy's
+    # finite-difference run on this gap panel takes minutes) within loglik_tol.
+    data = industries_with_holes
+    free = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never"))
+    cap = float(np.sqrt(np.median(np.diag(free.params.Sigma)) * 12 ** 3))
+    spec = panel.ModelSpec(premium_factors=1, max_premium_vol=cap, std_errors="never", finish="filled")
+    res = panel.fit(data, spec)
+    direct = panel.fit(data, dataclasses.replace(spec, finish="direct"))
+    assert "finish on the filled panel" in res.message, res.message
+    assert direct.status in ("converged", "boundary") and abs(res.objective - direct.objective) < 1e-4
+    sigma = np.diag(res.params.Sigma) * 12 ** 3
+    assert sigma.max() <= cap ** 2 * (1 + 1e-9) and sigma.max() >= cap ** 2 * (1 - 1e-6)
+    old = _problem("gaps_2", ModelSpec(premium_factors=1, max_premium_vol=0.02, cap_method="projection"))
+    assert not surrogate.route(old, "filled")           # no boxed finish: the panel itself
 
 
 def _problem(pattern, spec=None, N=60, T=300):

@@ -56,7 +56,7 @@ class ChainState:
     psi: np.ndarray | None
     B: np.ndarray | None
     H: np.ndarray | None
-    fill: np.ndarray = None     # (m,) current values of the gap cells (data augmentation)
+    fill: np.ndarray | None = None      # (m,) current values of the gap cells (augmentation)
 
     def params(self, structure: str) -> Params:
         if structure == "full":
@@ -131,9 +131,10 @@ class Gibbs:
         return Y
 
     def _draw_gaps(self, st: ChainState, mu, common, rng) -> np.ndarray:
-        """(m,) gap cells drawn from ``y_gap | mu, theta, Y`` (and the return factors' part
-        ``common = s^-1 (g B')`` (T, N) for a factor H): the shock is ``N(0, s_t^2 psi_i)`` given
-        the common part, or, for a full H, the shock given that date's observed shocks."""
+        """(m,) gap cells drawn from ``y_gap | mu, theta, Y``: ``mu + s_t u`` with the scaled
+        shock ``u`` drawn as ``common + N(0, psi_i)`` (``common = g B'`` (T, N), this sweep's return
+        factors' part, for a factor H; None for a diagonal one), or, for a full H, from ``u_U | u_O``
+        given that date's observed shocks."""
         t, i = self.gap_at
         if self.rs.structure == "full":
             d = self.gap_dates

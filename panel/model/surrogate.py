@@ -69,7 +69,9 @@ def route(prob, finish: str) -> bool:
     """Whether ``prob`` (a :class:`panel.model.problem.Problem`) is fitted on its gap-filled copy:
     ``finish`` "filled" whenever it has gaps, "auto" when its gaps are a small share of every
     asset's span, its exact E-step is expensive and ``MIN_SPEEDUP`` times the filled panel's
-    (estimated), and it has at most one premium and one return factor.  Likelihoods with more
+    (estimated), and it has at most one premium and one return factor.  Never with a premium
+    volatility cap that has no boxed finish (two or more premium factors, or
+    ``cap_method="projection"``): the corrected surrogate needs the active-set finish.  Likelihoods with more
     factors have several local optima, and the two routes' paths can end in different ones
     (measured on nine simulated N = 40, T = 300 panels with 2% gaps and two factors of either kind:
     three differed, by 0.04 to 8 log-likelihood units, either route ahead; with one factor each,
@@ -78,8 +80,9 @@ def route(prob, finish: str) -> bool:
     if finish == "direct":
         return False
     spec = prob.spec
+    capped = prob.rs.max_sigma_diag is not None and prob.rs.k > 0
     if (spec.acceleration != "quasi-newton" or spec.loglik_tol is None
-            or (prob.rs.max_sigma_diag is not None and prob.rs.k > 0)):
+            or (capped and (prob.rs.k > 1 or spec.cap_method != "box"))):
         return False                      # the corrected surrogate needs the active-set finish
     gaps = fillable(prob.Y)
     if not gaps.any():
@@ -150,7 +153,8 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
         trace.append((total(), obj, e.loglik, elapsed(), "filled-fit"))
     status = run.status if run.status in ("max_iter", "time_budget") else None
     # 2. outer steps on the corrected surrogate
-    bounds = setup(prob)["bounds"]
+    qn = setup(prob)
+    bounds, cap = qn["bounds"], qn.get("cap")
     outer = 0
     while status is None:
         if outer == MAX_OUTER:
@@ -172,7 +176,7 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
         before = total()
         p1, _, inner_obj, n, inner_status, _ = em._active_set_finish(
             p, es, base, before, filled.estep, corrected, corrected_score, packer, bounds,
-            spec.max_iter, time_left(), em._Trace(None), elapsed, spec.loglik_tol, spec.stopping)
+            spec.max_iter, time_left(), em._Trace(None), elapsed, spec.loglik_tol, spec.stopping, cap)
         count["cheap"] += n - before
         if inner_status in ("max_iter", "time_budget"):
             status = inner_status
@@ -210,7 +214,7 @@ def _direct(prob, p, e, obj, count, setup, trace, elapsed, time_left) -> EMOutco
     before = count["exact"] + count["cheap"]
     p, e, obj, n, status, message = em._active_set_finish(
         p, e, obj, before, prob.estep, prob.objective, qn["score"], prob.packer, qn["bounds"],
-        spec.max_iter, time_left(), trace, elapsed, spec.loglik_tol, spec.stopping)
+        spec.max_iter, time_left(), trace, elapsed, spec.loglik_tol, spec.stopping, qn.get("cap"))
     count["exact"] += n - before
     if status == "converged":
         message = (f"converged after {n} E-steps ({count['exact']} exact on the panel, "
