@@ -142,6 +142,13 @@ def test_setting_is_recorded_and_old_runs_read_as_integrated():
         ModelSpec(augment_gaps=False).resolve(3, 12, 40, ("a", "b", "c"))
     with pytest.raises(SpecError, match="augment_gaps must be True or False"):
         ModelSpec(estimation="bayes", augment_gaps="yes").resolve(3, 12, 40, ("a", "b", "c"))
+    from panel.model.params import Params
+    from panel.report.content import setting_lines
+
+    p = Params.build(np.zeros((3, 0)), np.full(3, 1e-6), "diagonal", psi=np.ones(3))
+    words = {s: dict(setting_lines(s, {}, p, 12))["estimation"] for s in (spec, ModelSpec.from_dict(old))}
+    assert words[spec].endswith("gaps drawn by the sampler")
+    assert words[ModelSpec.from_dict(old)].endswith("gaps integrated out")
 
 
 def test_panels_without_gaps_draw_the_same_numbers_either_way():

@@ -174,7 +174,8 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
         lines.append((f"fixed {key}", premium_vol(value) if key.startswith("own_premium_vol")
                       else f"{100 * value:g}% a year"))
     if spec.max_premium_vol is not None:
-        lines.append(("max premium vol", premium_vol(spec.max_premium_vol)))
+        kept = "" if spec.cap_method == "box" else " (kept by projection alone: runs stored before the boxed finish)"
+        lines.append(("max premium vol", premium_vol(spec.max_premium_vol) + kept))
     if spec.premium_prior is not None:
         lines.append(("premium prior", f"{premium_vol(spec.premium_prior.vol)}, weight "
                       f"{spec.premium_prior.weight:g} periods"))
@@ -192,7 +193,8 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
         lines.append(("estimation", f"Bayesian (Gibbs), {spec.chains} chains x {spec.draws} draws after "
                                     f"{warmup} warm-up, seed {spec.seed} (sampler seed "
                                     f"{settings.get('sampler_seed', '?')}), summaries over "
-                                    f"{spec.summary_draws} draws, path {spec.method}"))
+                                    f"{spec.summary_draws} draws, path {spec.method}, gaps "
+                                    + ("drawn by the sampler" if spec.augment_gaps else "integrated out")))
         lines.append(("priors", f"own premium vol {priors['premium_vol_family']} scale "
                                 f"{100 * priors['premium_vol']:g}% a year, loading scale "
                                 f"{100 * priors['loading_vol']:g}% a year, return vol "
