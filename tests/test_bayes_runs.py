@@ -97,6 +97,7 @@ def test_fit_returns_a_panelfit_with_posterior_columns(bayes_fit, panel):
     q = r.parameters[r.parameters["name"] == "idio_premium_var"]["value"].to_numpy()
     np.testing.assert_allclose(q, np.asarray(r.posterior.draws["q"]).mean(axis=(0, 1)), rtol=1e-12)
     assert r.settings()["sampler_seed"] == r.posterior.settings["seed"]
+    assert r.message.endswith("; 3 gap cells drawn by the sampler")      # the panel's 3 gaps
 
 
 def test_cross_section_mixes_over_the_draws(bayes_fit):

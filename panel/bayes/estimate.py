@@ -65,9 +65,10 @@ def fit_bayes(prob: Problem, start: Params | None = None, progress=None) -> Pane
     p = posterior_mean_params(res)
     loglik = float(prob.estep(p).loglik)
     sweeps = spec.chains * (spec.draws + res.settings["warmup"])
+    gaps = res.settings["gap_cells"]
     message = (f"{res.message}; {spec.chains} chains x {spec.draws} draws after "
                f"{res.settings['warmup']} warm-up, sampler seed {seed} (from seed {spec.seed} and "
-               f"{panel.dates[-1].date()})")
+               f"{panel.dates[-1].date()})" + (f"; {gaps} gap cells drawn by the sampler" if gaps else ""))
     return PanelFit(panel=panel, spec=spec, start=start, params=p, k=rs.k, structure=rs.structure,
                     periods_per_year=rs.ppy, loglik=loglik, objective=loglik,
                     n_params=count_free(rs, p.n_assets), n_obs=prob.n_obs, n_iter=int(sweeps),
