@@ -115,7 +115,7 @@ def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
         prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
         max_iter=spec.max_iter, time_budget=spec.time_budget,
         accelerate=spec.acceleration != "none", progress=progress, loglik_tol=spec.loglik_tol,
-        stopping=spec.stopping, **_quasi_newton_setup(prob, floor))
+        stopping=spec.stopping, handover=spec.handover, **_quasi_newton_setup(prob, floor))
 
 
 def check_estimable(Y: np.ndarray, assets, rs) -> None:
