@@ -36,6 +36,10 @@ NOISE = 1e-11
 #: 3e-4 ended the two-factor fit in a local optimum 11 lower; 1e-5 took 1.3-2.2x the E-steps of
 #: 1e-4.
 HANDOVER = 1e-3
+#: The hand-over of runs stored before ``ModelSpec.handover``, and of fits under a premium
+#: volatility cap with premium factors (measured: with 1e-3 the filled route ended 0.013 short on
+#: a capped gap panel, the direct finish stalled).
+LEGACY_HANDOVER = 1e-4
 #: L-BFGS-B iterations over which the gain must stay below ``loglik_tol`` (active-set finish).
 GAIN_WINDOW = 3
 #: Rounds of the active-set finish (each after a pinned variance was released).

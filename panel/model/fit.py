@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from panel.model import inference, mstep as ms, surrogate
-from panel.model.em import run_em
+from panel.model.em import HANDOVER, LEGACY_HANDOVER, run_em
 from panel.model.params import Params, count_free
 from panel.model.problem import Problem, as_panel
 from panel.model.result import PanelFit
@@ -115,7 +115,7 @@ def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
         prob.objective, prob.packer, tol=spec.tol, param_tol=spec.param_tol,
         max_iter=spec.max_iter, time_budget=spec.time_budget,
         accelerate=spec.acceleration != "none", progress=progress, loglik_tol=spec.loglik_tol,
-        stopping=spec.stopping, handover=spec.handover, **_quasi_newton_setup(prob, floor))
+        stopping=spec.stopping, **_quasi_newton_setup(prob, floor))
 
 
 def check_estimable(Y: np.ndarray, assets, rs) -> None:
@@ -171,7 +171,11 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
         return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
 
     qn = prob.spec.acceleration == "quasi-newton"
-    if rs.max_sigma_diag is not None and rs.k > 0:
+    capped = rs.max_sigma_diag is not None and rs.k > 0
+    handover = prob.spec.handover
+    if handover is None:            # the default: see ModelSpec.handover
+        handover = LEGACY_HANDOVER if capped else HANDOVER
+    if capped:
         free_q = prob.packer.free_q
 
         def project(p):
@@ -179,9 +183,9 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
             return Params(Lambda=lam, q=q, H=p.H, B=p.B, psi=p.psi)
         if rs.k == 1 and prob.spec.cap_method == "box" and prob.spec.loglik_tol is not None:
             return {"score": score if qn else None, "bounds": bounds, "project": project,
-                    "cap": (rs.max_sigma_diag, floor)}
-        return {"bounds": bounds, "project": project}
-    return {"score": score if qn else None, "bounds": bounds}
+                    "cap": (rs.max_sigma_diag, floor), "handover": handover}
+        return {"bounds": bounds, "project": project, "handover": handover}
+    return {"score": score if qn else None, "bounds": bounds, "handover": handover}
 
 
 @blas_limited

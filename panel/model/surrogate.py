@@ -145,8 +145,7 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
     run = run_em(p0, filled.estep, mstep, filled.objective, packer, tol=spec.tol,
                  param_tol=spec.param_tol, max_iter=max(1, spec.max_iter - total()),
                  time_budget=time_left(), accelerate=True, progress=cheap_progress,
-                 loglik_tol=spec.loglik_tol, stopping=spec.stopping, handover=spec.handover,
-                 **setup(filled))
+                 loglik_tol=spec.loglik_tol, stopping=spec.stopping, **setup(filled))
     count["cheap"] += run.n_estep
     e1, mean1, obj1 = exact(run.params)
     if obj1 > obj:
