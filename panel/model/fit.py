@@ -148,7 +148,8 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     SQUAREM's extrapolated points are projected onto it by the M-step's own rule (its safeguard
     keeps the objective monotone); with one factor (``cap_method="box"``) the finish then works in
     coordinates where the bound is a box (``cap``, :class:`panel.model.em._Coords`), with more
-    there is no quasi-Newton finish."""
+    there is no quasi-Newton finish.  Also EM's ``handover`` to the finish (``ModelSpec.handover``:
+    None is :data:`panel.model.em.HANDOVER`, or ``LEGACY_HANDOVER`` under a cap with factors)."""
     rs = prob.rs
     logvar = prob.packer.log_variance_mask()
     n_lam = int(prob.packer.lam_free.sum())

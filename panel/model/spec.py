@@ -235,9 +235,9 @@ class ModelSpec:
     augment_gaps : Bayes: draw the gaps (as ``finish`` defines them) as part of the chain (data
         augmentation), so each sweep costs what it costs on a panel without them; the posterior is
         the same.  Measured on N=100, T=600 with 2% gaps: 11 ms a sweep against 496 ms, the
-        same median ESS (benchmark ``python -m panel.bench.bayes``).  False integrates them out in every sweep (the
-        exact dense path at the gap dates).  :meth:`from_dict` reads Bayesian settings without
-        the key as False, so stored runs reproduce bit for bit.
+        same median ESS (benchmark ``python -m panel.bench.bayes``).  False integrates them out
+        in every sweep (the exact dense path at the gap dates).  :meth:`from_dict` reads Bayesian
+        settings without the key as False, so stored runs reproduce bit for bit.
     method : {"auto", "dense", "stretch", "balanced"}
         E-step path (:mod:`panel.kalman.paths`): "dense" is the reference; "stretch" decouples the
         panel's final balanced stretch exactly; "balanced" is "stretch" for fully balanced panels

@@ -71,12 +71,12 @@ def route(prob, finish: str) -> bool:
     asset's span, its exact E-step is expensive and ``MIN_SPEEDUP`` times the filled panel's
     (estimated), and it has at most one premium and one return factor.  Never with a premium
     volatility cap that has no boxed finish (two or more premium factors, or
-    ``cap_method="projection"``): the corrected surrogate needs the active-set finish.  Likelihoods with more
-    factors have several local optima, and the two routes' paths can end in different ones
-    (measured on nine simulated N = 40, T = 300 panels with 2% gaps and two factors of either kind:
-    three differed, by 0.04 to 8 log-likelihood units, either route ahead; with one factor each,
-    14 panels and spec variants of N = 40-100 agreed within 4e-4, but 5 of 11 of N = 60, T = 300
-    did not: module docstring)."""
+    ``cap_method="projection"``): the corrected surrogate needs the active-set finish.
+    Likelihoods with more factors have several local optima, and the two routes' paths can end in
+    different ones (measured on nine simulated N = 40, T = 300 panels with 2% gaps and two
+    factors of either kind: three differed, by 0.04 to 8 log-likelihood units, either route ahead;
+    with one factor each, 14 panels and spec variants of N = 40-100 agreed within 4e-4, but 5 of
+    11 of N = 60, T = 300 did not: module docstring)."""
     if finish == "direct":
         return False
     spec = prob.spec
