@@ -178,11 +178,9 @@ def test_economic_discipline_on_twelve_industries():
     ml = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never"))
     assert ml.status == "boundary" and "own premium innovation variance at zero" in ml.message
     # Source: scipy.optimize's L-BFGS-B run to its own 1e-10 projected-gradient tolerance (the legacy
-    # finish, with the hand-over of runs stored before it): the active-set finish stopping at
-    # loglik_tol reaches its optimum (measured: 7e-7 log-likelihood units higher) in fewer E-steps
-    # (measured 286 against 313; 188 with the old hand-over, 1e-4).
-    legacy = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never", loglik_tol=None,
-                                             handover=1e-4))
+    # finish): the active-set finish stopping at loglik_tol reaches its optimum (measured: 7e-7
+    # log-likelihood units higher) in fewer E-steps (measured 188 against 313).
+    legacy = panel.fit(data, panel.ModelSpec(premium_factors=1, std_errors="never", loglik_tol=None))
     assert ml.loglik >= legacy.loglik - 1e-6 * abs(legacy.loglik)
     assert ml.n_iter < legacy.n_iter
     # premium volatility in % a year (DESIGN.md section 5): loadings x 12^1.5, own part sqrt(q x 12^3)

@@ -1,7 +1,6 @@
 """Rules of the model that hold by construction: common practice, a hand-computed example, the
 settings' validation and the boundary reporting."""
 
-import dataclasses
 import math
 
 import numpy as np
@@ -311,27 +310,6 @@ def test_settings_stored_without_stopping_keep_the_gradient_rule():
     assert abs(new.loglik - legacy.loglik) < 1e-4
     with pytest.raises(panel.SpecError, match="stopping must be one of"):
         panel.fit(frame, panel.ModelSpec(stopping="sometimes"))
-
-
-def test_settings_stored_without_handover_keep_the_old_one():
-    # Runs stored before the setting read as 1e-4, so they reproduce.  Simulation (invented panel
-    # from the model): the default 1e-3 reaches the same optimum (within loglik_tol) in fewer
-    # E-steps (measured: 104 against 237).
-    from panel.bench.fit import simulate
-    from panel.model import em
-
-    stored = panel.ModelSpec().to_dict()
-    assert stored["handover"] is None and em.HANDOVER == 1e-3      # None: 1e-3, or 1e-4 under a cap
-    del stored["handover"]
-    legacy_spec = panel.ModelSpec.from_dict(stored)
-    assert legacy_spec.handover == 1e-4
-    frame, _, _ = simulate(30, 600, "balanced")
-    legacy = panel.fit(frame, dataclasses.replace(legacy_spec, std_errors="never"))
-    new = panel.fit(frame, panel.ModelSpec(std_errors="never"))
-    assert new.n_iter < 0.6 * legacy.n_iter, (new.n_iter, legacy.n_iter)
-    assert abs(new.loglik - legacy.loglik) < 1e-4
-    with pytest.raises(panel.SpecError, match="handover must be"):
-        panel.ModelSpec(handover=2.0).resolve(3, 12, 40, ("a", "b", "c"))
 
 
 def test_settings_stored_without_cap_method_keep_the_projection():

@@ -7,7 +7,7 @@ theta0`` and ``a = min(-1, -|r| / |v|)``, in the packed scale (log variances), h
 towards ``a = -1`` while the objective is below that of ``theta2``.
 
 EM crawls near the optimum for variance parameters, so ``acceleration="quasi-newton"`` (the
-default) hands over, once EM's relative progress per step falls below ``handover``, to L-BFGS-B on
+default) hands over, once EM's relative progress per step falls below ``HANDOVER``, to L-BFGS-B on
 the exact log-likelihood with the score that each E-step gives by Fisher's identity; log variances
 are bounded below by the variance floor, so a boundary solution shows up as a variance at the floor.
 
@@ -25,21 +25,15 @@ from panel.model.params import Packer, Params
 
 #: Allowed fall of the objective per step, relative — rounding noise, not a decrease.
 NOISE = 1e-11
-#: EM relative progress per step below which the quasi-Newton finish takes over (the default of
-#: ``ModelSpec.handover``; stored runs without it read 1e-4).  EM's slow directions are the
-#: ill-conditioned ones; L-BFGS-B started while EM still moves builds its curvature on them sooner.
-#: Measured 2026-12-03 with the active-set finish, 1e-3 against 1e-4: a median 147 against 239
-#: E-steps on 12 simulated panels and spec variants (the same optimum within 3e-7, or higher by up
-#: to 5e-4); on the 30 Fama-French portfolios since 1990, 294 against 1,119 (2e-3 higher) and 718
-#: against 1,087 with a diagonal H, but 490 against 438 with two premium factors (1.3e-4 higher,
-#: status "stalled") and on the 12 industries since 1949 286 against 188 (the same optimum).
-#: 3e-4 ended the two-factor fit in a local optimum 11 lower; 1e-5 took 1.3-2.2x the E-steps of
-#: 1e-4.
-HANDOVER = 1e-3
-#: The hand-over of runs stored before ``ModelSpec.handover``, and of fits under a premium
-#: volatility cap with premium factors (measured: with 1e-3 the filled route ended 0.013 short on
-#: a capped gap panel, the direct finish stalled).
-LEGACY_HANDOVER = 1e-4
+#: EM relative progress per step below which the quasi-Newton finish takes over.  EM's slow
+#: directions are the ill-conditioned ones; L-BFGS-B started while EM still moves builds its
+#: curvature on them sooner (measured on the benchmark panels: 1e-5 took 1.3-2.2x the E-steps of
+#: 1e-4 to reach the same optimum).  1e-3, measured 2026-12-03 with the active-set finish, is not
+#: kept: on 12 simulated panels and spec variants it took a median 147 E-steps against 239 at the
+#: same optimum, but on 15 fits of Fama-French portfolios it ended in a worse local optimum in 4
+#: (by 0.22, 0.64, 1.4 and 14) and a better one only by up to 2e-3; EM's longer path to the
+#: hand-over keeps the fit in its start's basin more often.
+HANDOVER = 1e-4
 #: L-BFGS-B iterations over which the gain must stay below ``loglik_tol`` (active-set finish).
 GAIN_WINDOW = 3
 #: Rounds of the active-set finish (each after a pinned variance was released).
@@ -63,8 +57,7 @@ class EMOutcome:
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
            bounds=None, extrapolate: bool = True, project=None, progress=None,
-           loglik_tol: float | None = None, stopping: str = "gain-model", cap=None,
-           handover: float = HANDOVER) -> EMOutcome:
+           loglik_tol: float | None = None, stopping: str = "gain-model", cap=None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
@@ -78,8 +71,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     (:func:`_active_set_finish`); None is the legacy finish (:func:`_quasi_newton`).
     ``stopping`` is the active-set finish's rule ("gain-model" or "gradient", ``ModelSpec.stopping``).
     ``cap = (cap, q_floor (N,))``: one premium factor under ``Lambda_i^2 + q_i <= cap``; the
-    finish works in coordinates where that bound is a box (:class:`_Coords`).  ``handover``: EM's
-    relative progress per step below which the finish takes over (:data:`HANDOVER`).
+    finish works in coordinates where that bound is a box (:class:`_Coords`).
     """
     accelerate = accelerate and extrapolate
     lo = hi = None
@@ -150,7 +142,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
         if rel < tol and dtheta < param_tol:
             status, message = "converged", f"converged after {n} E-steps"
             break
-        if score is not None and rel < handover:
+        if score is not None and rel < HANDOVER:
             remaining = None if time_budget is None else time_budget - elapsed()
             if loglik_tol is None:
                 p, e, obj, n, status, message = _quasi_newton(

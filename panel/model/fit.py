@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from panel.model import inference, mstep as ms, surrogate
-from panel.model.em import HANDOVER, LEGACY_HANDOVER, run_em
+from panel.model.em import run_em
 from panel.model.params import Params, count_free
 from panel.model.problem import Problem, as_panel
 from panel.model.result import PanelFit
@@ -148,8 +148,7 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     SQUAREM's extrapolated points are projected onto it by the M-step's own rule (its safeguard
     keeps the objective monotone); with one factor (``cap_method="box"``) the finish then works in
     coordinates where the bound is a box (``cap``, :class:`panel.model.em._Coords`), with more
-    there is no quasi-Newton finish.  Also EM's ``handover`` to the finish (``ModelSpec.handover``:
-    None is :data:`panel.model.em.HANDOVER`, or ``LEGACY_HANDOVER`` under a cap with factors)."""
+    there is no quasi-Newton finish."""
     rs = prob.rs
     logvar = prob.packer.log_variance_mask()
     n_lam = int(prob.packer.lam_free.sum())
@@ -172,11 +171,7 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
         return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
 
     qn = prob.spec.acceleration == "quasi-newton"
-    capped = rs.max_sigma_diag is not None and rs.k > 0
-    handover = prob.spec.handover
-    if handover is None:            # the default: see ModelSpec.handover
-        handover = LEGACY_HANDOVER if capped else HANDOVER
-    if capped:
+    if rs.max_sigma_diag is not None and rs.k > 0:
         free_q = prob.packer.free_q
 
         def project(p):
@@ -184,9 +179,9 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
             return Params(Lambda=lam, q=q, H=p.H, B=p.B, psi=p.psi)
         if rs.k == 1 and prob.spec.cap_method == "box" and prob.spec.loglik_tol is not None:
             return {"score": score if qn else None, "bounds": bounds, "project": project,
-                    "cap": (rs.max_sigma_diag, floor), "handover": handover}
-        return {"bounds": bounds, "project": project, "handover": handover}
-    return {"score": score if qn else None, "bounds": bounds, "handover": handover}
+                    "cap": (rs.max_sigma_diag, floor)}
+        return {"bounds": bounds, "project": project}
+    return {"score": score if qn else None, "bounds": bounds}
 
 
 @blas_limited

@@ -157,14 +157,8 @@ class ModelSpec:
         Stop when the relative change of the objective per accepted step is below ``tol`` ...
     param_tol : float
         ... and the largest parameter change (transformed scale) is below ``param_tol``.  (With the
-        quasi-Newton finish, EM hands over once its relative progress per step falls below
-        ``handover``; the fit has then converged by ``loglik_tol``.)
-    handover : float or None
-        EM's relative progress per step below which the quasi-Newton finish takes over.  None
-        (default): 1e-3 (:data:`panel.model.em.HANDOVER`, chosen by measurement), or 1e-4 with a
-        premium-volatility cap and premium factors (there 1e-3 measured worse: the filled route
-        ended 0.013 short on a capped gap panel, the direct one stalled).  :meth:`from_dict` reads
-        settings without the key as 1e-4, so stored runs reproduce.
+        quasi-Newton finish, EM hands over once its relative progress per step falls below 1e-4;
+        the fit has then converged by ``loglik_tol``.)
     loglik_tol : float or None
         Stopping rule of the quasi-Newton finish, in log-likelihood units: converged when the
         objective gained less than ``loglik_tol`` over the last 3 quasi-Newton iterations and no
@@ -265,7 +259,6 @@ class ModelSpec:
     starts: int = 1
     loglik_tol: float | None = 1e-4
     stopping: str = "gain-model"
-    handover: float | None = None
     finish: str = "direct"
     cap_method: str = "box"
     estimation: str = "ml"
@@ -321,8 +314,6 @@ class ModelSpec:
         data.setdefault("finish", "direct")
         # ... and the cap with premium factors kept by projection alone.
         data.setdefault("cap_method", "projection")
-        # ... and EM's hand-over to the finish at a relative progress of 1e-4.
-        data.setdefault("handover", 1e-4)
         # ... and Bayesian runs integrated their gaps out in every sweep.
         if data.get("estimation") == "bayes":
             data.setdefault("augment_gaps", False)
@@ -396,9 +387,6 @@ class ModelSpec:
             raise SpecError(f"stopping must be one of {', '.join(STOPPING_RULES)}, got {self.stopping!r}")
         if self.finish not in FINISHES:
             raise SpecError(f"finish must be one of {', '.join(FINISHES)}, got {self.finish!r}")
-        if self.handover is not None and not (isinstance(self.handover, (int, float))
-                                              and 0 < self.handover < 1):
-            raise SpecError(f"handover must be a relative progress between 0 and 1, got {self.handover!r}")
         if self.cap_method not in CAP_METHODS:
             raise SpecError(f"cap_method must be one of {', '.join(CAP_METHODS)}, got {self.cap_method!r}")
         if self.loglik_tol is not None and not (self.loglik_tol > 0 and math.isfinite(self.loglik_tol)):
