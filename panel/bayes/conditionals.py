@@ -147,8 +147,8 @@ def impute_shocks(u, obs, H, rng, precision: bool = False) -> np.ndarray:
     cells of the sampler).
 
     ``precision=True`` conditions in precision form, ``u_U | u_O ~ N(-(P_UU)^-1 P_UO u_O,
-    (P_UU)^-1)`` with ``P = H^-1`` inverted once: O(|U|^3 + |U| N) per missing pattern instead of
-    O(N^3), for few missing cells per date.  The covariance form (default) is kept because stored
+    (P_UU)^-1)`` with ``P = H^-1`` inverted once: O(|U|^3 + |U| N) per date instead of O(N^3) per
+    missing pattern, for few missing cells per date.  The covariance form (default) is kept because stored
     runs drew their shocks with it (another draw of the same distribution).
     """
     out = u.copy()
@@ -182,10 +182,10 @@ def _impute_precision(out, obs, H, rng) -> np.ndarray:
         PU = P[U]                                                            # (n, m, N)
         PUU = np.take_along_axis(PU, U[:, None, :], axis=2)                  # (n, m, m)
         rhs = np.einsum("rmj,rj->rm", PU, np.where(obs[rows], out[rows], 0.0))
+        # PUU = L L': the draw is L^-T (xi - L^-1 rhs) (mean -PUU^-1 rhs, covariance PUU^-1)
         L = np.linalg.cholesky(PUU)
-        mean = -np.linalg.solve(PUU, rhs[..., None])[..., 0]
-        noise = np.linalg.solve(np.swapaxes(L, 1, 2), rng.standard_normal((rows.size, m, 1)))
-        out[rows[:, None], U] = mean + noise[..., 0]
+        z = rng.standard_normal((rows.size, m, 1)) - np.linalg.solve(L, rhs[..., None])
+        out[rows[:, None], U] = np.linalg.solve(np.swapaxes(L, 1, 2), z)[..., 0]
     return out
 
 

@@ -30,7 +30,7 @@ NOISE = 1e-11
 #: curvature on them sooner (measured on the benchmark panels: 1e-5 took 1.3-2.2x the E-steps of
 #: 1e-4 to reach the same optimum).  1e-3, measured 2026-12-03 with the active-set finish, is not
 #: kept: on 12 simulated panels and spec variants it took a median 147 E-steps against 239 at the
-#: same optimum, but on 15 fits of Fama-French portfolios it ended in a worse local optimum in 4
+#: same optimum, but on 18 fits of Fama-French portfolio sets it ended in a worse local optimum in 4
 #: (by 0.22, 0.64, 1.4 and 14) and a better one only by up to 2e-3; EM's longer path to the
 #: hand-over keeps the fit in its start's basin more often.
 HANDOVER = 1e-4
@@ -71,7 +71,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     (:func:`_active_set_finish`); None is the legacy finish (:func:`_quasi_newton`).
     ``stopping`` is the active-set finish's rule ("gain-model" or "gradient", ``ModelSpec.stopping``).
     ``cap = (cap, q_floor (N,))``: one premium factor under ``Lambda_i^2 + q_i <= cap``; the
-    finish works in coordinates where that bound is a box (:class:`_Coords`).
+    active-set finish works in coordinates where that bound is a box (:class:`_Coords`; the
+    legacy finish never gets it: ``panel.model.fit._quasi_newton_setup``).
     """
     accelerate = accelerate and extrapolate
     lo = hi = None
@@ -147,7 +148,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             if loglik_tol is None:
                 p, e, obj, n, status, message = _quasi_newton(
                     p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
-                    trace, elapsed, cap)
+                    trace, elapsed)
             else:
                 p, e, obj, n, status, message = _active_set_finish(
                     p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
@@ -201,7 +202,7 @@ def _charge(count: dict, max_iter: int, time_left, spent: float) -> None:
 
 
 def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
-                  trace, elapsed, cap=None):
+                  trace, elapsed):
     """L-BFGS-B on the objective with the Fisher-identity score; keeps the best point evaluated.
     The legacy finish (``ModelSpec.loglik_tol=None``, runs stored before it existed).
 
@@ -213,7 +214,7 @@ def _quasi_newton(p, e, obj, n, estep, objective, score, packer, bounds, max_ite
     best = {"p": p, "e": e, "obj": obj}
     count = {"n": n}
     t_start = elapsed()
-    co = _Coords(packer.pack(p), packer, bounds, cap)
+    co = _Coords(packer.pack(p), packer, bounds)
     scale = max(1.0, abs(obj))
 
     def f(x):
@@ -297,7 +298,7 @@ class _Coords:
 
     def _cap_box(self, theta0, packer, cap, floor, x0, xbounds):
         """Replace each free ``(Lambda_i, log q_i)`` by ``(x_t, rho)`` (class docstring)."""
-        N, n_lam = packer.N, int(packer.lam_free.sum())
+        n_lam = int(packer.lam_free.sum())
         free = np.flatnonzero(packer.free_q)
         jl, jq = free, n_lam + np.arange(free.size)        # k = 1: one loading per asset
         f = np.asarray(floor, float)[free]
