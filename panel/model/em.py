@@ -57,7 +57,8 @@ class EMOutcome:
 def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, param_tol: float,
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
            bounds=None, extrapolate: bool = True, project=None, progress=None,
-           loglik_tol: float | None = None, stopping: str = "gain-model", cap=None) -> EMOutcome:
+           loglik_tol: float | None = None, stopping: str = "gain-model", cap=None,
+           keep: dict | None = None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
@@ -152,7 +153,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             else:
                 p, e, obj, n, status, message = _active_set_finish(
                     p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
-                    trace, elapsed, loglik_tol, stopping, cap)
+                    trace, elapsed, loglik_tol, stopping, cap, keep)
             break
     return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
                      trace=tuple(trace))
@@ -319,6 +320,13 @@ class _Coords:
             xbounds[i] = (-reach, reach)
         self.pairs = (jl, jq, np.sqrt(cap), f)
 
+    def coordinates(self, theta: np.ndarray) -> np.ndarray:
+        """The inverse of :meth:`theta` (without cap coordinates): ``x`` of another packed vector."""
+        x = theta / self.d
+        plain = self.plain
+        x[plain] = np.exp(theta[plain] / self.a[plain]) / self.d[plain]
+        return x
+
     def theta(self, x: np.ndarray) -> np.ndarray:
         theta = x * self.d
         plain = self.plain
@@ -366,22 +374,44 @@ class _Curvature:
                 self.pairs = (self.pairs + [(s, y, 1.0 / sy)])[-self.most:]
         self.prev = (x.copy(), grad.copy())
 
+    def widened(self, free: np.ndarray) -> "_Curvature":
+        """A copy whose pairs live in the full coordinate vector (zero where ``free`` is False)."""
+        out = _Curvature(self.most)
+        for s, y, rho in self.pairs:
+            S, Y = np.zeros(free.size), np.zeros(free.size)
+            S[free], Y[free] = s, y
+            out.pairs.append((S, Y, rho))
+        return out
+
+    def step(self, g: np.ndarray) -> np.ndarray:
+        """The quasi-Newton ascent step ``B^{-1} g`` (two-loop recursion; L-BFGS's own initial
+        matrix, the last pair's ``s'y / y'y``); ``g`` itself before any pair."""
+        if not self.pairs:
+            return g.astype(float).copy()
+        s, y, _ = self.pairs[-1]
+        return self._apply(g, float(s @ y) / float(y @ y))
+
     def remaining_gain(self, g: np.ndarray) -> float:
         """``g' B^{-1} g / 2``: the gain a Newton step on the quadratic model would still make
         (log-likelihood units) from the projected gradient ``g``; infinite without curvature yet."""
         if not self.pairs:
             return np.inf
+        # initial matrix: the flattest curvature seen (largest s'y / y'y), not the last pair's as in
+        # L-BFGS's own steps, so directions the pairs have not explored are not assumed stiff
+        gamma = max(1.0 / (rho * float(y @ y)) for s, y, rho in self.pairs)
+        return 0.5 * float(g @ self._apply(g, gamma))
+
+    def _apply(self, g: np.ndarray, gamma: float) -> np.ndarray:
+        """``B^{-1} g`` with initial matrix ``gamma I`` (Nocedal & Wright Algorithm 7.4)."""
         q, alphas = g.astype(float).copy(), []
         for s, y, rho in reversed(self.pairs):
             a = rho * float(s @ q)
             alphas.append(a)
             q -= a * y
-        # initial matrix: the flattest curvature seen (largest s'y / y'y), not the last pair's as in
-        # L-BFGS's own steps, so directions the pairs have not explored are not assumed stiff
-        q *= max(1.0 / (rho * float(y @ y)) for s, y, rho in self.pairs)
+        q *= gamma
         for (s, y, rho), a in zip(self.pairs, reversed(alphas)):
             q += (a - rho * float(y @ q)) * s
-        return 0.5 * float(g @ q)
+        return q
 
 
 class _Converged(Exception):
@@ -389,7 +419,7 @@ class _Converged(Exception):
 
 
 def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, max_iter, time_left,
-                       trace, elapsed, loglik_tol, stopping="gain-model", cap=None):
+                       trace, elapsed, loglik_tol, stopping="gain-model", cap=None, keep=None):
     """L-BFGS-B with the Fisher-identity score on the variances not pinned at their floor.
 
     Active set: a variance at its floor whose score (d objective / d log variance, free from the
@@ -482,6 +512,8 @@ def _active_set_finish(p, e, obj, n, estep, objective, score, packer, bounds, ma
         except _OutOfTime as stop:
             status, message = _budget_outcome(stop, count["n"])
             break
+        if keep is not None:
+            keep.update(coords=co, curvature=curvature.widened(free))
         if status != "converged":
             break
         # release check: a variance at (or within a factor 2 of) its floor whose score is positive

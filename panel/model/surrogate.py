@@ -25,6 +25,13 @@ Dennis, Lewis & Torczon (1998, Structural Optimization 15, 16-23):
    finish's rule this models the gain left and does not bound it: measured within 4e-4 of the
    direct route's optimum (``route``).
 
+The outer steps' finishes start where the previous finish left off (``ModelSpec.outer_finish``
+"warm", :mod:`panel.model.warm`): the corrected surrogates differ little from one step to the
+next, so the secant pairs of the previous finish still describe their curvature.  Restarted
+from scratch, L-BFGS-B relearnt it every time: on a simulated N = 100, T = 600 panel with 2% gaps
+the three outer steps took 744, 518 and 62 E-steps on the copy, warm 44, 8 and 1 (whole fit 362
+E-steps against 1,633, the same optimum within 2e-5).
+
 Opt-in (``ModelSpec.finish``, default "direct"): the path differs from the direct fit's, and
 where the likelihood has several local optima the two can end in different ones (measured on 11
 simulated N = 60, T = 300 panels with gaps: 5 differed, by 0.002 to 14 log-likelihood units, either
@@ -47,6 +54,7 @@ from panel.kalman import paths
 from panel.kalman.gapfill import fill_gaps, fillable
 from panel.model import em, mstep as ms
 from panel.model.em import EMOutcome, run_em
+from panel.model.warm import warm_finish
 
 #: The filled panel's E-step must be estimated at least this many times cheaper than the exact one
 #: (each outer step costs one exact pass — two on the segment path — and a few hundred cheap
@@ -137,6 +145,7 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
             progress(count["exact"] + count["cheap"] + n, None)
 
     trace = em._Trace(progress)
+    keep = {}
     p = p0
     e, mean, obj = exact(p)
     trace.append((total(), obj, e.loglik, elapsed(), "start"))
@@ -145,7 +154,7 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
     run = run_em(p0, filled.estep, mstep, filled.objective, packer, tol=spec.tol,
                  param_tol=spec.param_tol, max_iter=max(1, spec.max_iter - total()),
                  time_budget=time_left(), accelerate=True, progress=cheap_progress,
-                 loglik_tol=spec.loglik_tol, stopping=spec.stopping, **setup(filled))
+                 loglik_tol=spec.loglik_tol, stopping=spec.stopping, keep=keep, **setup(filled))
     count["cheap"] += run.n_estep
     e1, mean1, obj1 = exact(run.params)
     if obj1 > obj:
@@ -174,9 +183,16 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
 
         base = corrected(es, p)
         before = total()
-        p1, _, inner_obj, n, inner_status, _ = em._active_set_finish(
-            p, es, base, before, filled.estep, corrected, corrected_score, packer, bounds,
-            spec.max_iter, time_left(), em._Trace(None), elapsed, spec.loglik_tol, spec.stopping, cap)
+        inner_status, start = None, (p, es, base, before)
+        if spec.outer_finish == "warm" and keep and cap is None:
+            p1, e1, inner_obj, n, inner_status, _ = warm_finish(
+                *start, filled.estep, corrected, corrected_score, packer, spec.max_iter,
+                time_left(), elapsed, spec.loglik_tol, keep)
+            start = (p1, e1, inner_obj, n)
+        if inner_status in (None, "stalled"):   # no curvature yet, a cap, or no increase: go on cold
+            p1, _, inner_obj, n, inner_status, _ = em._active_set_finish(
+                *start, filled.estep, corrected, corrected_score, packer, bounds, spec.max_iter,
+                time_left(), em._Trace(None), elapsed, spec.loglik_tol, spec.stopping, cap, keep)
         count["cheap"] += n - before
         if inner_status in ("max_iter", "time_budget"):
             status = inner_status
