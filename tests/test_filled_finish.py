@@ -128,24 +128,28 @@ def test_filled_finish_reaches_the_exact_optimum_on_industries(industries_with_h
                                atol=1e-4 * np.abs(direct.params.H).max())
 
 
-def _copy_esteps(message):
+def _counts(message):
+    """(exact passes on the panel, E-steps on the copy) from a filled route's message."""
     import re
-    return int(re.search(r"(\d+) on its gap-filled copy", message).group(1))
+    found = re.search(r"(\d+) exact passes on the panel, (\d+) on its gap-filled copy", message)
+    return int(found.group(1)), int(found.group(2))
 
 
-def test_warm_outer_steps_reach_the_optimum_on_fewer_e_steps(industries_with_holes):
-    # Source: scipy.optimize (L-BFGS-B) on the exact log-likelihood, as above.  The outer steps'
-    # finish going on from the previous finish's curvature must reach the same optimum within
-    # loglik_tol, on fewer E-steps of the filled copy than L-BFGS-B restarted each time.
+def test_warm_filled_route_reaches_the_optimum_on_fewer_e_steps(industries_with_holes):
+    # Source: scipy.optimize (L-BFGS-B) on the exact log-likelihood, as above.  The route started
+    # from the copy's own smoother, its outer steps' finishes going on from the previous finish's
+    # curvature, must reach the same optimum within loglik_tol on fewer exact passes and fewer
+    # E-steps of the filled copy than the cold route (exact start, L-BFGS-B restarted each time).
     data = industries_with_holes
     base = dict(premium_factors=1, return_shocks="full", std_errors="never",
                 premium_prior=panel.Prior(vol=0.24, weight=24))
     warm = panel.fit(data, panel.ModelSpec(finish="filled", **base))
-    cold = panel.fit(data, panel.ModelSpec(finish="filled", outer_finish="cold", **base))
+    cold = panel.fit(data, panel.ModelSpec(finish="filled", filled_warm=False, **base))
     best = lbfgsb_objective(data, panel.ModelSpec(**base))
     assert warm.status == cold.status == "converged"
     assert abs(warm.objective - best) < 1e-4 and abs(cold.objective - best) < 1e-4
-    assert _copy_esteps(warm.message) < 0.7 * _copy_esteps(cold.message), (warm.message, cold.message)
+    assert _counts(warm.message)[1] < 0.7 * _counts(cold.message)[1], (warm.message, cold.message)
+    assert _counts(warm.message)[0] < _counts(cold.message)[0]
     assert np.all(np.diff(warm.trace["objective"].to_numpy()) >= 0)
 
 
@@ -193,13 +197,13 @@ def test_route_is_taken_for_sparse_gaps_only():
 
 def test_settings_stored_without_finish_fit_on_the_panel_itself():
     spec = ModelSpec.from_dict({k: v for k, v in ModelSpec().to_dict().items()
-                                if k not in ("finish", "outer_finish")})
-    assert spec.finish == "direct" and spec.outer_finish == "cold"
-    assert ModelSpec().finish == "direct" and ModelSpec().outer_finish == "warm"
+                                if k not in ("finish", "filled_warm")})
+    assert spec.finish == "direct" and spec.filled_warm is False
+    assert ModelSpec().finish == "direct" and ModelSpec().filled_warm is True
     with pytest.raises(panel.SpecError, match="finish must be one of"):
         _problem("gaps_2", ModelSpec(finish="sometimes"))
-    with pytest.raises(panel.SpecError, match="outer_finish must be one of"):
-        _problem("gaps_2", ModelSpec(outer_finish="hot"))
+    with pytest.raises(panel.SpecError, match="filled_warm must be True or False"):
+        _problem("gaps_2", ModelSpec(filled_warm="yes"))
 
 
 def test_filled_finish_budget_and_fallback(industries_with_holes, monkeypatch):
