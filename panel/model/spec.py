@@ -186,12 +186,13 @@ class ModelSpec:
         at the last one to three dates: :func:`panel.kalman.gapfill.fillable`) is fitted.
         "direct" (default): on the panel itself.  "filled": mostly on a copy with its gaps filled
         by their conditional means, corrected by exact E-steps and certified by the same
-        ``loglik_tol`` rule (:mod:`panel.model.surrogate`): measured on N=100, T=600 panels with
-        0.5% and 2% gaps, 8.2 s and 9.9 s against 140 s and 144 s, log-likelihoods 6e-5 and 3e-4
-        apart.  Its path differs from the direct route's, and where the likelihood has several
-        local optima (variances piled up at zero) the two can end in different ones: on 11
-        simulated N=60, T=300 panels, 6 agreed within 6e-4 and 5 did not (filled lower by 0.04,
-        0.2 and 14, higher by 0.002 and 1.9).  "auto": "filled" where it pays (gaps at most 10%
+        ``loglik_tol`` rule (:mod:`panel.model.surrogate`; ``filled_warm``): measured on N=100,
+        T=600 panels with 0.5% and 2% gaps, 5.1 s and 4.2 s against 167 s and 177 s, log-likelihoods
+        3e-5 and 2e-4 apart.  Its path differs from the direct route's, and where the likelihood
+        has several local optima (variances piled up at zero) the two can end in different ones:
+        on 11 simulated N=60, T=300 panels with 2% gaps (the benchmark's simulator, seeds 1-11) it
+        took 1.0-3.1 s against 21-68 s and ended 5e-6 to 2.6e-4 below the direct route's optimum
+        on 10 of them, 0.22 below on one.  "auto": "filled" where it pays (gaps at most 10%
         of every asset's span, the exact E-step expensive and 10x the copy's, at most one premium
         and one return factor: :func:`panel.model.surrogate.route`), else "direct".  Panels without
         gaps are fitted directly either way.  :meth:`from_dict` reads settings without the key
