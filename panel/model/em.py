@@ -74,6 +74,8 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     ``cap = (cap, q_floor (N,))``: one premium factor under ``Lambda_i^2 + q_i <= cap``; the
     active-set finish works in coordinates where that bound is a box (:class:`_Coords`; the
     legacy finish never gets it: ``panel.model.fit._quasi_newton_setup``).
+    ``keep``: a dict the active-set finish fills with its last round's coordinates and curvature
+    pairs (``coords``, ``curvature``), for a finish that goes on from them (:mod:`panel.model.warm`).
     """
     accelerate = accelerate and extrapolate
     lo = hi = None

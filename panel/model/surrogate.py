@@ -58,8 +58,8 @@ from panel.model.em import EMOutcome, run_em
 from panel.model.warm import warm_finish
 
 #: The filled panel's E-step must be estimated at least this many times cheaper than the exact one
-#: (each outer step costs one exact pass — two on the segment path — and a few hundred cheap
-#: E-steps).
+#: (each outer step costs one exact pass — two on the segment path — and some cheap E-steps: a
+#: few dozen warm, a few hundred cold).
 MIN_SPEEDUP = 10.0
 #: ... and the exact E-step estimated to cost at least this (units of
 #: :func:`panel.kalman.paths.estimated_cost`; about 20 ms on the benchmark machine): below it the
