@@ -49,3 +49,32 @@ def test_forward_information_that_is_not_positive_definite_is_redone_centrally()
     assert kept[0, 0] < 0                                    # forward: not positive definite
     cov = _inverse_information(theta, score, scale, 1e-6, score(theta))
     assert abs(cov[0, 0] - 1.0) < 1e-6                       # central: the exact information 1
+
+
+def test_finish_coordinates_invert_the_parameter_map_with_and_without_the_cap_box():
+    # The warm finish (panel.model.warm) resumes in an earlier finish's coordinates, so mapping a
+    # packed vector into them must invert _Coords.theta, the cap's (x_t, rho) box included.
+    import panel
+    from panel.bench.fit import simulate
+    from panel.model import mstep as ms
+    from panel.model.em import _Coords
+    from panel.model.fit import _quasi_newton_setup
+    from panel.model.params import Params
+    from panel.model.problem import Problem
+    from panel.model.start import starting_values
+
+    data = panel.Panel.from_frame(simulate(8, 120, "balanced")[0])
+    for spec in (panel.ModelSpec(), panel.ModelSpec(premium_factors=1, max_premium_vol=0.05),
+                 panel.ModelSpec(return_shocks="full")):
+        prob = Problem(data, spec)
+        p0 = starting_values(prob.Y, prob.rs)
+        if prob.rs.max_sigma_diag is not None:
+            lam, q = ms.cap_premium(p0.Lambda, p0.q, prob.rs.max_sigma_diag, prob.packer.free_q)
+            p0 = Params(Lambda=lam, q=q, H=p0.H, B=p0.B, psi=p0.psi)
+        setup = _quasi_newton_setup(prob, ms.VAR_FLOOR * np.diag(p0.H))
+        theta = prob.packer.pack(p0)
+        co = _Coords(theta, prob.packer, setup["bounds"], setup.get("cap"))
+        assert (co.pairs is not None) == (spec.max_premium_vol is not None)
+        x = np.clip(co.x0 + 0.05 * np.random.default_rng(1).normal(size=co.x0.size), co.lower, co.upper)
+        np.testing.assert_allclose(co.coordinates(co.theta(x)), x, rtol=1e-12, atol=1e-12)
+        np.testing.assert_allclose(co.coordinates(theta), co.x0, rtol=1e-12, atol=1e-12)

@@ -323,11 +323,18 @@ class _Coords:
         self.pairs = (jl, jq, np.sqrt(cap), f)
 
     def coordinates(self, theta: np.ndarray) -> np.ndarray:
-        """The inverse of :meth:`theta` (without cap coordinates): ``x`` of another packed vector."""
+        """The inverse of :meth:`theta`: ``x`` of another packed vector (clipped into the box)."""
         x = theta / self.d
         plain = self.plain
         x[plain] = np.exp(theta[plain] / self.a[plain]) / self.d[plain]
-        return x
+        if self.pairs is not None:
+            jl, jq, c, f = self.pairs
+            lam, q = theta[jl], np.exp(theta[jq])
+            t = np.maximum(lam ** 2 + q - f, 0.0)
+            x[jl] = np.sqrt(t) / c
+            with np.errstate(invalid="ignore", divide="ignore"):
+                x[jq] = np.where(t > 0, lam / np.sqrt(t), 0.0)
+        return np.clip(x, self.lower, self.upper)
 
     def theta(self, x: np.ndarray) -> np.ndarray:
         theta = x * self.d

@@ -200,9 +200,9 @@ class ModelSpec:
     filled_warm : bool
         How the filled-copy route (``finish``) starts its pieces.  True (default): the first fill
         from the copy's own smoother (no exact pass at the start) and each outer step's finish from
-        the previous finish's coordinates and curvature pairs (:mod:`panel.model.warm`; it goes on
-        cold where its line search finds no increase, and under a premium-volatility cap with
-        factors).  False: an exact pass at the start and L-BFGS-B from scratch at every outer step.
+        the previous finish's coordinates and curvature pairs (:mod:`panel.model.warm`, the cap's
+        boxed coordinates included; it goes on cold where its line search finds no increase).
+        False: an exact pass at the start and L-BFGS-B from scratch at every outer step.
         Measured on N=100, T=600 panels with 0.5% and 2% gaps: 3 exact passes and 413 and 378
         E-steps on the copy, against 4 and 1,142 and 1,629.  :meth:`from_dict` reads settings
         without the key as False, so stored runs reproduce.

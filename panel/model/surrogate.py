@@ -194,12 +194,12 @@ def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
         base = corrected(es, p)
         before = total()
         inner_status, start = None, (p, es, base, before)
-        if spec.filled_warm and keep and cap is None:
+        if spec.filled_warm and keep:
             p1, e1, inner_obj, n, inner_status, _ = warm_finish(
                 *start, filled.estep, corrected, corrected_score, packer, spec.max_iter,
                 time_left(), elapsed, spec.loglik_tol, keep)
             start = (p1, e1, inner_obj, n)
-        if inner_status in (None, "stalled"):   # no curvature yet, a cap, or no increase: go on cold
+        if inner_status in (None, "stalled"):   # no curvature yet, or no increase: go on cold
             p1, _, inner_obj, n, inner_status, _ = em._active_set_finish(
                 *start, filled.estep, corrected, corrected_score, packer, bounds, spec.max_iter,
                 time_left(), em._Trace(None), elapsed, spec.loglik_tol, spec.stopping, cap, keep)
