@@ -204,6 +204,13 @@ def test_settings_stored_without_finish_fit_on_the_panel_itself():
         _problem("gaps_2", ModelSpec(finish="sometimes"))
     with pytest.raises(panel.SpecError, match="filled_warm must be True or False"):
         _problem("gaps_2", ModelSpec(filled_warm="yes"))
+    from panel.model.params import Params
+    from panel.report.content import setting_lines
+
+    p = Params.build(np.zeros((3, 0)), np.full(3, 1e-6), "diagonal", psi=np.ones(3))
+    line = {w: dict(setting_lines(ModelSpec(finish="filled", filled_warm=w), {}, p, 12))["estimation"]
+            for w in (True, False)}
+    assert "on a filled copy)" in line[True] and "each correction restarted)" in line[False]
 
 
 def test_filled_finish_budget_and_fallback(industries_with_holes, monkeypatch):
