@@ -135,7 +135,7 @@ def _counts(message):
     return int(found.group(1)), int(found.group(2))
 
 
-def test_warm_filled_route_reaches_the_optimum_on_fewer_e_steps(industries_with_holes):
+def test_warm_filled_route_reaches_the_optimum_on_fewer_e_steps(industries_with_holes, monkeypatch):
     # Source: scipy.optimize (L-BFGS-B) on the exact log-likelihood, as above.  The route started
     # from the copy's own smoother, its outer steps' finishes going on from the previous finish's
     # curvature, must reach the same optimum within loglik_tol on fewer exact passes and fewer
@@ -151,6 +151,13 @@ def test_warm_filled_route_reaches_the_optimum_on_fewer_e_steps(industries_with_
     assert _counts(warm.message)[1] < 0.7 * _counts(cold.message)[1], (warm.message, cold.message)
     assert _counts(warm.message)[0] < _counts(cold.message)[0]
     assert np.all(np.diff(warm.trace["objective"].to_numpy()) >= 0)
+    # a warm finish that finds no increase hands over to the cold one from its best point
+    from panel.model import warm as warm_module
+
+    monkeypatch.setattr(warm_module, "HALVINGS", 0)
+    fallback = panel.fit(data, panel.ModelSpec(finish="filled", **base))
+    assert fallback.status == "converged" and abs(fallback.objective - best) < 1e-4
+    assert _counts(fallback.message)[1] > _counts(warm.message)[1]
 
 
 def test_filled_finish_under_a_premium_volatility_cap(industries_with_holes):
