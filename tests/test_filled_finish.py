@@ -202,6 +202,22 @@ def test_route_is_taken_for_sparse_gaps_only():
     assert not surrogate.route(small, "auto") and surrogate.route(small, "filled")
 
 
+def test_a_direct_fit_that_the_filled_route_would_speed_up_says_so():
+    frame, _, _ = simulate(60, 300, "gaps_2")
+    data = panel.Panel.from_frame(frame)
+    cells = int(fillable(frame.to_numpy()).sum())
+    direct = panel.fit(data, ModelSpec(std_errors="never", max_iter=5))
+    assert f"; {cells} gap cells fitted on the panel itself: finish='filled'" in direct.message
+    filled = panel.fit(data, ModelSpec(std_errors="never", max_iter=5, finish="filled"))
+    assert "fitted on the panel itself" not in filled.message
+    exits = panel.fit(panel.Panel.from_frame(simulate(60, 300, "exits")[0]),
+                      ModelSpec(std_errors="never", max_iter=5))
+    assert "gap cells" not in exits.message                   # exits are not gaps
+    small = panel.fit(panel.Panel.from_frame(simulate(10, 120, "gaps_2")[0]),
+                      ModelSpec(std_errors="never", max_iter=5))
+    assert "gap cells" not in small.message                   # its exact E-step is quick anyway
+
+
 def test_settings_stored_without_finish_fit_on_the_panel_itself():
     spec = ModelSpec.from_dict({k: v for k, v in ModelSpec().to_dict().items()
                                 if k not in ("finish", "filled_warm")})

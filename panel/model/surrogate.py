@@ -103,10 +103,24 @@ def route(prob, finish: str) -> bool:
     span = prob.Y.shape[0] - (~np.isnan(prob.Y)).argmax(axis=0)       # from each asset's entry
     if np.max(gaps.sum(axis=0) / span) > MAX_GAP_SHARE:
         return False
+    return _pays(prob, gaps)
+
+
+def _pays(prob, gaps: np.ndarray) -> bool:
+    """Whether the exact E-step is estimated expensive and ``MIN_SPEEDUP`` times the filled copy's."""
+    method = prob.spec.method
+    exact = paths.estep_cost(prob.Y, method, prob.s2, prob.init)
     filled = np.where(gaps, 0.0, prob.Y)
-    exact = paths.estep_cost(prob.Y, spec.method, prob.s2, prob.init)
-    return exact >= max(MIN_EXACT_COST,
-                        MIN_SPEEDUP * paths.estep_cost(filled, spec.method, prob.s2, prob.init))
+    return exact >= max(MIN_EXACT_COST, MIN_SPEEDUP * paths.estep_cost(filled, method, prob.s2, prob.init))
+
+
+def missed_gaps(prob) -> int:
+    """The number of gap cells of a panel fitted on itself (``finish="direct"``) whose fit the
+    filled route would have made much cheaper (:func:`_pays`), else 0: the fit's message says so."""
+    if prob.spec.finish != "direct" or not route(prob, "filled"):
+        return 0
+    gaps = fillable(prob.Y)
+    return int(gaps.sum()) if _pays(prob, gaps) else 0
 
 
 def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
