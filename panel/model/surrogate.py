@@ -30,8 +30,8 @@ fill comes from the copy's own smoother, not from an exact pass.  The outer step
 where the previous finish left off (:mod:`panel.model.warm`): the corrected surrogates differ
 little from one step to the next, so the secant pairs of the previous finish still describe their
 curvature.  Restarted from scratch, L-BFGS-B relearnt it every time: on a simulated N = 100, T =
-600 panel with 2% gaps the three outer steps took 744, 518 and 62 E-steps on the copy, warm 44, 8
-and 1 (whole fit 362 E-steps against 1,633, the same optimum within 2e-5).
+600 panel with 2% gaps the three outer steps took 744, 518 and 62 E-steps on the copy, warm 45, 14
+and 11 (whole fit 381 E-steps against 1,633, ending 1.3e-4 higher).
 
 Opt-in (``ModelSpec.finish``, default "direct"): the path differs from the direct fit's, and
 where the likelihood has several local optima the two can end in different ones (measured on 11
