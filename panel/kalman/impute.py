@@ -242,13 +242,29 @@ def seen_diagonal(groups: list[MomentGroup], N: int) -> tuple[np.ndarray, np.nda
     return sums, counts
 
 
+def score_sum(groups: list[MomentGroup], N: int) -> np.ndarray | None:
+    """(N, N) sum of the groups' disturbance-smoother score terms (:class:`MomentGroup`'s
+    ``score``), each in its components' rows and columns; None unless every group has them."""
+    if not groups or any(g.score is None for g in groups):
+        return None
+    total = np.zeros((N, N))
+    for g in groups:
+        if g.mask.all():
+            total += g.score
+        else:
+            idx = np.flatnonzero(g.mask)
+            total[np.ix_(idx, idx)] += g.score
+    return total
+
+
 def add_groups(a: MomentGroup, b: MomentGroup) -> MomentGroup:
     """The sum of two groups with the same mask, keeping the seen part of a collapsed one."""
     seen = None
     if a.seen is not None or b.seen is not None:
         N = a.mask.size
         seen = tuple(x + y for x, y in zip(seen_diagonal([a], N), seen_diagonal([b], N)))
-    return MomentGroup(a.mask, a.count + b.count, a.M + b.M, seen=seen)
+    score = None if a.score is None or b.score is None else a.score + b.score
+    return MomentGroup(a.mask, a.count + b.count, a.M + b.M, seen=seen, score=score)
 
 
 MAX_GROUPS = 16         # more groups than this in an E-step result are collapsed (memory O(N^2))
@@ -268,7 +284,8 @@ def collapse(groups: list[MomentGroup], C: np.ndarray, most: int | None = None) 
     except np.linalg.LinAlgError:
         return groups
     N = C.shape[0]
-    return [MomentGroup(np.ones(N, bool), n, total, seen=seen_diagonal(groups, N))]
+    return [MomentGroup(np.ones(N, bool), n, total, seen=seen_diagonal(groups, N),
+                        score=score_sum(groups, N))]
 
 
 class Folding:

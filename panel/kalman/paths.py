@@ -137,11 +137,14 @@ class Plan:
     of the data done (for the stretch path, the final stretch's basis and data coordinates).
 
     ``Y`` (T, N) decimal returns with NaN; ``scale2`` (T,) squared volatility scale or None;
-    ``init`` the informative initial premium ``(mean, var)`` or None.  A fit calls
-    :meth:`estep` hundreds of times on the same panel.
+    ``init`` the informative initial premium ``(mean, var)`` or None; ``terms``: the E-steps'
+    moment groups also carry the disturbance smoother's score terms where the path forms them
+    (the stretch path's chains and every dense date's premium innovations; not the segment path).
+    A fit calls :meth:`estep` hundreds of times on the same panel.
     """
 
-    def __init__(self, Y, scale2=None, init=None, method: str = "auto"):
+    def __init__(self, Y, scale2=None, init=None, method: str = "auto", terms: bool = False):
+        self.terms = terms
         self.Y = np.asarray(Y, dtype=float)
         T = self.Y.shape[0]
         self.s2 = np.ones(T) if scale2 is None else np.asarray(scale2, dtype=float)
@@ -173,10 +176,11 @@ class Plan:
             return self.estep(Sigma, H, h_parts), self.report(Sigma, H).smoothed_mean
         if self.data is None:
             out = dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
-                                 bounded=self._bounded(self.Y.shape[0]))
+                                 bounded=self._bounded(self.Y.shape[0]), terms=self.terms)
         else:
             out = stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
-                                   data=self.data, h_parts=h_parts, bounded=self._bounded(self.data.a))
+                                   data=self.data, h_parts=h_parts, bounded=self._bounded(self.data.a),
+                                   terms=self.terms)
         return _collapsed(out.estep, Sigma, H), out.smoothed_mean
 
     def _estep(self, Sigma, H, h_parts) -> EStep:
@@ -191,7 +195,7 @@ class Plan:
             return self._dense_estep(Sigma, H)
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,
                                 data=self.data, h_parts=h_parts,
-                                bounded=self._bounded(self.data.a)).estep
+                                bounded=self._bounded(self.data.a), terms=self.terms).estep
 
     def _bounded(self, dense_dates: int, k: int = 0) -> bool:
         """Recompute the dense dates' covariances rather than keep them all (KEEP_ALL_BYTES);
@@ -200,7 +204,7 @@ class Plan:
 
     def _dense_estep(self, Sigma, H) -> EStep:
         return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
-                              bounded=self._bounded(self.Y.shape[0])).estep
+                              bounded=self._bounded(self.Y.shape[0]), terms=self.terms).estep
 
     def report(self, Sigma, H, Lambda=None, cov_at=(), only_cov=False,
                bounded: bool | None = None) -> Smoothed:

@@ -174,24 +174,34 @@ class _Tail:
         return ch.coef + ch.ghat * self.delta if self.coupled else ch.coef
 
     # ---------------------------------------------------------------- EM moments
-    def groups(self):
-        """(w groups, e groups) of the stretch: w over dates a+1..T-1, e over a..T-1.
+    def groups(self, terms: bool = False):
+        """(w groups, e groups) of the stretch: w over dates a+1..T-1, e over a..T-1; ``terms``:
+        with their score terms (:meth:`premium_terms`; the shocks' are ``Me - L I``).
 
         Computed in the chains' basis (:class:`panel.kalman.chain.ChainMoments`): no transform
         back to dates.
         """
-        ch, W, L = self.ch, self.W, self.L
+        ch, W, V, L = self.ch, self.W, self.V, self.L
         sl = np.sqrt(self.basis.lam)[:, None]
         A = self._alpha_coords()
-        X = A * sl
-        Mw = X.T @ X + np.diag(ch.sum_dvar)
         R = self.zeta - A
         Me = R.T @ R + np.diag(ch.sum_var_s2)
         if self.coupled:
-            G = ch.ghat * sl
-            Mw += (G.T @ G) * self.coupling
             Me += (ch.ghat.T @ ch.ghat) * self.coupling
-        e_groups = [_group(self.O, self.N, L, W @ Me @ W.T)]
+        RwO = ReO = None
+        if terms:
+            # Mw from its terms, D Rw D + (L - 1) D: the same sum, one Gram matrix as without
+            Rw = self.premium_terms()
+            Mw = self.d[:, None] * Rw * self.d[None, :]
+            Mw[np.diag_indices_from(Mw)] += (L - 1) * self.d
+            RwO, ReO = V @ Rw @ V.T, V @ (Me - L * np.eye(Me.shape[0])) @ V.T
+        else:
+            X = A * sl
+            Mw = X.T @ X + np.diag(ch.sum_dvar)
+            if self.coupled:
+                G = ch.ghat * sl
+                Mw += (G.T @ G) * self.coupling
+        e_groups = [_group(self.O, self.N, L, W @ Me @ W.T, ReO)]
         if L < 2:
             return [], e_groups
         MwO = W @ Mw @ W.T
@@ -204,7 +214,33 @@ class _Tail:
             M[np.ix_(io, iu)] = BM.T
             M[np.ix_(iu, iu)] = BM @ self.B.T + (L - 1) * self.S_UgO
             MwO = M
-        return [_group(self.A, self.N, L - 1, MwO)], e_groups
+            if terms:                       # the imputed U part adds nothing to the score
+                R = np.zeros_like(M)
+                R[np.ix_(io, io)] = RwO
+                RwO = R
+        return [_group(self.A, self.N, L - 1, MwO, RwO)], e_groups
+
+    def premium_terms(self) -> np.ndarray:
+        """The chains' premium-side score terms ``D^{-1} (Mw - (L-1) D) D^{-1}`` in the basis
+        (``Mw`` the differences' moment, ``D = diag(d)``), formed without dividing by ``d``: with
+        ``w_l = d / (d + lam_l)`` a smoothed coordinate over ``d`` is the data's over ``d + lam_l``
+        (``lam_l > 0`` for l >= 1; the flat level l = 0 has no difference), and ``sum_l lam_l w_l -
+        (L - 1) d = -d^2 sum_{l>=1} 1 / (d + lam_l)``.  Exact as ``d -> 0``, where the moment's own
+        difference cancels every digit."""
+        ch, lam = self.ch, self.basis.lam[1:, None]
+        inv = 1.0 / (self.d[None, :] + lam)                   # (L-1, n)
+        sl = np.sqrt(lam)
+        z = self.zeta[1:]
+        u0 = self.basis.u0[1:, None]
+        if self.coupled:
+            # alpha coordinates w (zeta + u0 c), c = s0 delta / first_var (ChainMoments.ghat)
+            z = z + u0 * (self.basis.s[0] * self.delta / ch.first_var)[None, :]
+        X = z * inv * sl
+        Rw = X.T @ X - np.diag(inv.sum(axis=0))
+        if self.coupled:
+            G = u0 * inv * sl * (self.basis.s[0] / ch.first_var)[None, :]
+            Rw += (G.T @ G) * self.coupling
+        return Rw
 
     # ---------------------------------------------------------------- reporting
     def _moments(self, tau, alpha_t, g_t, r_t, m_x, P_x, ZPZ, cov=False):
@@ -308,10 +344,10 @@ class _Tail:
         return arr, covs
 
 
-def _group(members, N, count, M):
+def _group(members, N, count, M, score=None):
     mask = np.zeros(N, bool)
     mask[members] = True
-    return MomentGroup(mask, count, _sym(M))
+    return MomentGroup(mask, count, _sym(M), score=None if score is None else _sym(score))
 
 
 def _merge(*lists):
@@ -345,7 +381,7 @@ def _prior(Y, Sigma, H, s2, init, Lambda, a, keep_every=None):
 
 def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
                      want_estep=True, want_report=True, data: StretchData | None = None,
-                     h_parts=None, only_cov=False, bounded=False) -> Smoothed:
+                     h_parts=None, only_cov=False, bounded=False, terms=False) -> Smoothed:
     """Same contract and result as :func:`panel.kalman.dense.dense_smoother` (to rounding).
 
     ``data`` : the final stretch's :class:`StretchData` (built here when None; a fit builds it
@@ -354,6 +390,8 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     stretch (E-step only); ``only_cov=True`` fills the stretch's per-date arrays at ``cov_at`` only.
     ``bounded=True``: the dense dates before the stretch run like
     :func:`panel.kalman.dense.dense_smoother`'s ``bounded`` (O(sqrt(a) (k+N)^2) memory for them).
+    ``terms``: the moment groups also carry the disturbance smoother's score terms (the stretch's
+    from the chains, :meth:`_Tail.premium_terms`; the dense dates' as in ``dense_smoother``).
     """
     Y = np.asarray(Y, dtype=float)
     Sigma = np.asarray(Sigma, dtype=float)
@@ -363,7 +401,7 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     a = final_stretch_start(Y) if data is None else data.a
     if a >= T:
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
-                                    want_estep=want_estep, bounded=bounded)
+                                    want_estep=want_estep, bounded=bounded, terms=terms)
     data = StretchData(Y, s2, a) if data is None else data
     cov_at = set(cov_at)
     keep = checkpoint_interval(a) if bounded else None
@@ -372,10 +410,10 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
         tail = _Tail(data, Sigma, H, prior, Lambda, want_var=want_report, h_parts=h_parts)
     except linalg.LinAlgError:      # singular Sigma_OO with dormant assets or factors: dense copes
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
-                                    want_estep=want_estep, bounded=bounded)
+                                    want_estep=want_estep, bounded=bounded, terms=terms)
     k = tail.k
     loglik = tail.loglik
-    w_groups, e_groups = tail.groups() if want_estep else ([], [])
+    w_groups, e_groups = tail.groups(terms) if want_estep else ([], [])
     head = None
     if flt is not None:
         loglik += flt.loglik
@@ -385,7 +423,8 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
                              flt.mp, flt.Pp, flt.loglik, flt.innov[:a], flt.innov_var[:a], rep,
                              cov_at={t for t in cov_at if t < a}, want_estep=want_estep,
                              terminal=(tail.m_star, tail.P_star, prior[0], prior[1], prior[2]),
-                             fold_under=(Sigma, H) if bounded and want_estep else None)
+                             fold_under=(Sigma, H) if bounded and want_estep else None,
+                             terms=terms)
         if want_estep:
             w_groups = _merge(head.estep.w_groups, w_groups)
             e_groups = _merge(head.estep.e_groups, e_groups)

@@ -15,12 +15,19 @@ class MomentGroup:
     (n, n) the sum of ``E[x_t x_t' | Y]`` over those dates for the present components ``x_t``.
     ``seen`` is None, or for a group collapsed by :func:`panel.kalman.impute.collapse` (full mask,
     unseen parts imputed) the (N,) sums of the seen second moments and (N,) counts of dates seen.
+    ``score`` is None, or the (n, n) sum over those dates of the disturbance smoother's score terms
+    ``r_t r_t' - N_t`` (Koopman & Shephard 1992, Biometrika 79, 823-826) of the present components:
+    ``C^{-1} (M - count C) C^{-1}`` for their covariance ``C``, formed by the path without inverting
+    ``C``, so it stays exact where that difference cancels digits (a variance near its floor).  For
+    a collapsed group it is the sum of its groups' terms, zero where a component was unseen (the
+    imputed part adds nothing to the score).
     """
 
     mask: np.ndarray
     count: int
     M: np.ndarray
     seen: tuple | None = None
+    score: np.ndarray | None = None
 
 
 @dataclass

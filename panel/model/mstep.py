@@ -27,7 +27,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import linalg
 
-from panel.kalman.impute import impute_sum, seen_diagonal
+from panel.kalman.impute import impute_sum, score_sum, seen_diagonal
 from panel.model.params import Params, canonical_loadings
 from panel.model.spec import ResolvedSpec
 
@@ -288,24 +288,36 @@ def expected_complete_loglik_grad(est, p: Params, rs: ResolvedSpec, packer, sigm
     With ``G = dQ/dC`` the loadings need ``2 G L`` and the log variances ``d * diag(G)``: for the
     factor structures these come from :func:`_score_blocks` in O(N^2 m); a full H needs all of G.
     """
-    moments = []
-    for groups, C, prior in ((est.w_groups, p.Sigma, sigma_prior), (est.e_groups, p.H, h_prior)):
-        total, n = impute_sum(groups, C)
+    N = p.n_assets
+    B, psi = _h_parts(p) if rs.structure != "full" else (None, None)
+    blocks = []
+    for groups, C, L, d, prior in ((est.w_groups, p.Sigma, p.Lambda, p.q, sigma_prior),
+                                   (est.e_groups, p.H, B, psi, h_prior)):
+        terms = score_sum(groups, N) if rs.score_form == "disturbance" else None
+        if terms is None:
+            total, n = impute_sum(groups, C)
+        else:           # the path's exact terms; only the prior is left to the formula
+            total, n = np.zeros((N, N)), 0.0
         total[np.diag_indices_from(total)] += prior.weight * prior.v
-        moments.append((total, n + prior.weight))
-    GS_L, GS_diag = _score_blocks(*moments[0], p.Lambda, p.q)
+        n += prior.weight
+        if L is None:                                        # full H: all of dQ/dH
+            Ci = np.linalg.inv(C)
+            G = -0.5 * (n * Ci - Ci @ total @ Ci)
+            blocks.append(G if terms is None else G + 0.5 * terms)
+            continue
+        GL, Gdiag = _score_blocks(total, n, L, d)
+        if terms is not None:
+            GL, Gdiag = GL + 0.5 * (terms @ L), Gdiag + 0.5 * np.diag(terms)
+        blocks.append((GL, Gdiag))
+    (GS_L, GS_diag), GH = blocks
     parts = [(2.0 * GS_L)[packer.lam_free], (p.q * GS_diag)[packer.free_q]]
     if rs.structure == "full":
-        total, n = moments[1]
-        Ci = np.linalg.inv(p.H)
-        GH = -0.5 * (n * Ci - Ci @ total @ Ci)                 # dQ/dH, symmetric
         Cf = np.linalg.cholesky(p.H)
         dC = 2.0 * GH @ Cf
         dC[np.diag_indices_from(dC)] *= np.diag(Cf)          # log-diagonal parametrisation
         parts.append(dC[packer.tril])
     else:
-        B, psi = _h_parts(p)
-        GH_L, GH_diag = _score_blocks(*moments[1], B, psi)
+        GH_L, GH_diag = GH
         if rs.structure == "factor":
             parts.append((2.0 * GH_L)[packer.b_free])
         parts.append((psi * GH_diag)[packer.free_psi])

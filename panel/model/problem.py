@@ -51,7 +51,7 @@ class Problem:
         self.sigma_prior = self._prior(spec.premium_prior, spec.premium_variance)
         self.h_prior = self._prior(spec.return_prior, units.return_variance)
         self.n_obs = int((~np.isnan(self.Y)).sum())
-        self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method)
+        self.plan = paths.Plan(self.Y, self.s2, self.init, spec.method, self._terms())
 
     def _prior(self, prior, to_variance):
         if prior is None:
@@ -70,8 +70,12 @@ class Problem:
         priors, packer and volatility scale, its own E-step plan."""
         other = copy.copy(self)
         other.Y = np.asarray(Y, dtype=float)
-        other.plan = paths.Plan(other.Y, self.s2, self.init, self.spec.method)
+        other.plan = paths.Plan(other.Y, self.s2, self.init, self.spec.method, self._terms())
         return other
+
+    def _terms(self) -> bool:
+        """Whether the E-steps form the disturbance smoother's score terms (``score_form``)."""
+        return self.spec.score_form == "disturbance"
 
     def objective(self, e, p: Params) -> float:
         return e.loglik + ms.log_prior(p, self.sigma_prior, self.h_prior)
