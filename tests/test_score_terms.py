@@ -19,10 +19,11 @@ from panel.model.problem import Problem
 from panel.model.spec import ModelSpec, SpecError
 
 
-def _industries(ragged: bool) -> panel.Panel:
+def _industries(ragged: str | None) -> panel.Panel:
     """Excess returns of four Fama-French industry portfolios since 1990
-    (linearmodels.datasets.french); ``ragged``: Durbl enters three years late and two returns are
-    missing, so the panel runs dense dates before its final stretch."""
+    (linearmodels.datasets.french).  ``ragged="gaps"``: three returns missing; ``"entry"``: Durbl
+    also enters three years late.  Either way the panel runs dense dates before its final
+    stretch (and the stretch path's final stretch is coupled to them)."""
     from linearmodels.datasets import french
 
     d = french.load()
@@ -31,9 +32,11 @@ def _industries(ragged: bool) -> panel.Panel:
     cols = ["NoDur", "Durbl", "Manuf", "Enrgy"]
     frame = pd.DataFrame({c: (d[c] - d["RF"]).to_numpy() for c in cols}, index=idx)
     if ragged:
-        frame.iloc[:36, 1] = np.nan
         frame.iloc[50, 2] = np.nan
         frame.iloc[51, 0] = np.nan
+        frame.iloc[200 if ragged == "gaps" else 10, 1] = np.nan
+    if ragged == "entry":
+        frame.iloc[:36, 1] = np.nan
     return panel.Panel.from_frame(frame, frequency="M")
 
 
@@ -84,10 +87,16 @@ def _scores(data, method):
 
 
 @pytest.mark.parametrize("ragged, method, tol", [
-    (False, "stretch", 1e-7),   # every term from the chains
-    (False, "dense", 1e-7),     # the premium side from the RTS moments, the shocks' from the formula
-    (True, "stretch", 1e-5),    # dense head + coupled final stretch; the gaps' shocks by formula
-    (True, "dense", 1e-5),
+    (None, "stretch", 1e-7),    # every term from the chains
+    (None, "dense", 1e-7),      # the premium side from the RTS moments, the shocks' from the formula
+    ("gaps", "stretch", 1e-7),  # dense head + coupled final stretch
+    ("gaps", "dense", 1e-7),
+    # A late entrant's two loadings differ by 3.4e-6 on both paths (1.8e-4 of the largest score;
+    # the moments' score misses by up to 2e-4 on this panel), the same on both paths and with
+    # either gap pattern: the entry date's complete data against statsmodels' exact diffuse
+    # likelihood, not rounding.  Left as is (noticed, open).
+    ("entry", "stretch", 1e-5),
+    ("entry", "dense", 1e-5),
 ])
 def test_disturbance_score_matches_statsmodels_complex_step(ragged, method, tol):
     # Source: statsmodels MLEModel.score(approx_complex_step=True) — the complex-step derivative
@@ -107,3 +116,11 @@ def test_score_form_setting_reads_back_and_refuses_unknown_values():
     assert ModelSpec.from_dict(stored).score_form == "moments"
     with pytest.raises(SpecError, match="score_form must be one of"):
         ModelSpec(score_form="numerical").resolve(4, 12, 100, ("a", "b", "c", "d"))
+    # the report's settings line names the older form of a stored run
+    from panel.model.params import Params
+    from panel.report.content import setting_lines
+
+    p = Params.build(np.zeros((3, 0)), np.full(3, 1e-6), "diagonal", psi=np.ones(3))
+    line = {form: dict(setting_lines(ModelSpec(score_form=form), {}, p, 12))["estimation"]
+            for form in ("disturbance", "moments")}
+    assert "score from the moments)" in line["moments"] and "moments" not in line["disturbance"]

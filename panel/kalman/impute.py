@@ -244,7 +244,8 @@ def seen_diagonal(groups: list[MomentGroup], N: int) -> tuple[np.ndarray, np.nda
 
 def score_sum(groups: list[MomentGroup], N: int) -> np.ndarray | None:
     """(N, N) sum of the groups' disturbance-smoother score terms (:class:`MomentGroup`'s
-    ``score``), each in its components' rows and columns; None unless every group has them."""
+    ``score``), each in its components' rows and columns; None unless every group has them (a
+    collapsed group's terms must cover all of its groups)."""
     if not groups or any(g.score is None for g in groups):
         return None
     total = np.zeros((N, N))

@@ -293,11 +293,11 @@ def expected_complete_loglik_grad(est, p: Params, rs: ResolvedSpec, packer, sigm
     blocks = []
     for groups, C, L, d, prior in ((est.w_groups, p.Sigma, p.Lambda, p.q, sigma_prior),
                                    (est.e_groups, p.H, B, psi, h_prior)):
-        terms = score_sum(groups, N) if rs.score_form == "disturbance" else None
-        if terms is None:
-            total, n = impute_sum(groups, C)
-        else:           # the path's exact terms; only the prior is left to the formula
-            total, n = np.zeros((N, N)), 0.0
+        # dQ/dC is linear in the groups: those with the path's exact terms add them, the rest
+        # (the segment path, dense dates' shocks) go through the formula with the prior
+        exact = [g for g in groups if g.score is not None] if rs.score_form == "disturbance" else []
+        terms = score_sum(exact, N) if exact else None
+        total, n = impute_sum([g for g in groups if g.score is None] if exact else groups, C)
         total[np.diag_indices_from(total)] += prior.weight * prior.v
         n += prior.weight
         if L is None:                                        # full H: all of dQ/dH

@@ -212,8 +212,8 @@ class ModelSpec:
         How the score (Fisher's identity) of the quasi-Newton finish, the active set's release
         test and the standard errors is formed.  "disturbance" (default): from the disturbance
         smoother's terms ``r r' - N`` (Koopman & Shephard 1992) where the E-step path gives them
-        (every date of a panel on the stretch path, balanced panels and their filled copies), else
-        from the moments.  "moments": ``C^{-1} (S - n C) C^{-1}`` from the EM moments ``S``, whose
+        (the stretch path's final stretch, so every balanced panel and filled copy, for both
+        premia and shocks; dense dates for the premia), else from the moments (the segment path).  "moments": ``C^{-1} (S - n C) C^{-1}`` from the EM moments ``S``, whose
         difference cancels digits as a variance nears its floor: at the optimum of the 18
         size-sorted portfolios of linearmodels' French data since 1990, two floored own premium
         variances had scores of the wrong sign and a loading's was off by a factor 2-5.  Measured

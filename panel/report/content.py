@@ -204,7 +204,8 @@ def setting_lines(spec: ModelSpec, settings: dict, params, ppy: int) -> list[tup
     finish = ("" if spec.acceleration != "quasi-newton" else ", legacy finish"
               if spec.loglik_tol is None else f", finish to {spec.loglik_tol:g} log-lik ({spec.stopping}"
               f"{_GAPS_ROUTE[spec.finish]}"
-              f"{'' if spec.finish == 'direct' or spec.filled_warm else ', each correction restarted'})")
+              f"{'' if spec.finish == 'direct' or spec.filled_warm else ', each correction restarted'}"
+              f"{'' if spec.score_form == 'disturbance' else ', score from the moments'})")
     lines.append(("estimation", f"{spec.acceleration} EM, at most {spec.max_iter} E-steps{budget}, tol "
                                 f"{spec.tol:g}/{spec.param_tol:g}{finish}, {spec.starts} start(s), std "
                                 f"errors {spec.std_errors}, path {spec.method}"))
