@@ -91,8 +91,8 @@ def _scores(data, method):
     (None, "dense", 1e-7),      # the premium side from the RTS moments, the shocks' from the formula
     ("gaps", "stretch", 1e-7),  # dense head + coupled final stretch
     ("gaps", "dense", 1e-7),
-    # A late entrant's two loadings differ by 3.4e-6 on both paths (1.8e-4 of the largest score;
-    # the moments' score misses by up to 2e-4 on this panel), the same on both paths and with
+    # A late entrant's two loadings differ by 3.4e-6 on both paths (1.9e-4 of the largest score;
+    # the moments' score misses by up to 2e-3 on this panel), the same on both paths and with
     # either gap pattern: the entry date's complete data against statsmodels' exact diffuse
     # likelihood, not rounding.  Left as is (noticed, open).
     ("entry", "stretch", 1e-5),
