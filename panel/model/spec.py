@@ -189,8 +189,8 @@ class ModelSpec:
         "direct" (default): on the panel itself.  "filled": mostly on a copy with its gaps filled
         by their conditional means, corrected by exact E-steps and certified by the same
         ``loglik_tol`` rule (:mod:`panel.model.surrogate`; ``filled_warm``): measured on N=100,
-        T=600 panels with 0.5% and 2% gaps, 5.1 s and 4.2 s against 167 s and 177 s, log-likelihoods
-        3e-5 and 2e-4 apart.  Its path differs from the direct route's, and where the likelihood
+        T=600 panels with 0.5% and 2% gaps, 5.7 s and 5.1 s against 163 s and 210 s, log-likelihoods
+        5e-5 and 2e-4 apart.  Its path differs from the direct route's, and where the likelihood
         has several local optima (variances piled up at zero) the two can end in different ones:
         on 11 simulated N=60, T=300 panels with 2% gaps (the benchmark's simulator, seeds 1-11) it
         took 1.0-3.1 s against 21-68 s and ended 5e-6 to 2.6e-4 below the direct route's optimum
