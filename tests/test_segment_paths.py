@@ -188,3 +188,28 @@ def test_bounded_segment_estep_equals_unbounded(pattern, scaled, informative):
         assert len(mine) == len(theirs)
         for a, b in zip(mine, theirs):
             assert np.array_equal(a.mask, b.mask) and a.count == b.count and np.array_equal(a.M, b.M)
+
+
+@pytest.mark.parametrize("method", ["stretch", "segments"])
+def test_a_numerically_singular_sigma_with_dormant_assets_falls_back_to_the_dense_path(method):
+    # A premium covariance whose observed block is singular to machine precision (equal loadings,
+    # own variances of a few units in the last place: positive definite, condition estimate below
+    # machine precision), as a finish's trial point can propose, makes the dormant assets'
+    # regression meaningless: the fast paths hand the E-step to the dense one (the oracle) instead
+    # of going on with a LAPACK warning.
+    import warnings
+
+    from panel.kalman.stretch import regression_on
+
+    rng = np.random.default_rng(11)
+    Y = _panel(rng, "exits")
+    _, H, _ = _model(rng, "factor")
+    Sigma = np.full((N, N), 0.01) + np.diag(np.full(N, 4e-18))
+    with warnings.catch_warnings(), pytest.raises(np.linalg.LinAlgError, match="ill-conditioned"):
+        warnings.simplefilter("ignore")         # whatever the caller's filters: it raises
+        regression_on(Sigma[:3, :3], Sigma[:3, 3:])
+    ref = paths.Plan(Y, method="dense").estep(Sigma, H)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        got = paths.Plan(Y, method=method).estep(Sigma, H)
+    assert got.loglik == pytest.approx(ref.loglik, rel=1e-10)

@@ -34,7 +34,7 @@ from scipy import linalg
 from panel.kalman import bridge, dense, impute
 from panel.kalman.checkpoints import BlockView, Recomputed, checkpoint_interval
 from panel.kalman.dense import LOG2PI, _FilterStep, _memo, _solve_right_pd, _sym
-from panel.kalman.stretch import simultaneous_diagonalisation
+from panel.kalman.stretch import regression_on, simultaneous_diagonalisation
 from panel.kalman.types import EStep, MomentGroup
 
 #: Shortest run of dates decoupled as a stretch (the bridge needs an interior date).
@@ -242,7 +242,7 @@ class _StretchSolve:
         if st.u_pos.size:
             U = A[st.u_pos]
             SOO = Sigma[np.ix_(O, O)]
-            self.B = linalg.solve(SOO, Sigma[np.ix_(O, U)], assume_a="pos").T
+            self.B = regression_on(SOO, Sigma[np.ix_(O, U)])
             self.S_UgO = _sym(Sigma[np.ix_(U, U)] - self.B @ Sigma[np.ix_(O, U)])
 
     def end(self):

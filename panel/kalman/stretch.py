@@ -28,6 +28,8 @@ scale varies; FFTs when it is constant) on the stretch.
 
 from __future__ import annotations
 
+import warnings
+
 import numpy as np
 from scipy import linalg
 
@@ -109,6 +111,20 @@ def simultaneous_diagonalisation(S: np.ndarray, H: np.ndarray, h_parts=None):
     return d, V, W, logdet_v - 0.5 * np.log(one).sum()
 
 
+def regression_on(SOO: np.ndarray, SOX: np.ndarray) -> np.ndarray:
+    """``(SOO^{-1} SOX)'``: the regression of other components on the observed ones ``O`` (the
+    dormant assets' premia, or the factors) under their covariance.  Raises ``LinAlgError`` when
+    ``SOO`` is numerically singular (LAPACK's condition estimate below machine precision: the
+    regression is then meaningless), so the caller falls back to the dense path, which never
+    inverts it, instead of going on with a warning."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", linalg.LinAlgWarning)
+        try:
+            return linalg.solve(SOO, SOX, assume_a="pos").T
+        except linalg.LinAlgWarning as ill:
+            raise linalg.LinAlgError(str(ill)) from None
+
+
 class _Tail:
     """The final stretch solved at given parameters (see the module docstring).
 
@@ -162,10 +178,10 @@ class _Tail:
             self.delta = self.Z @ self.m_star - ch.first_mean
             self.coupling = _sym(self.Z @ self.P_star @ self.Z.T) - np.diag(ch.first_var)
         if U.size:
-            self.B = linalg.solve(SOO, Sigma[np.ix_(O, U)], assume_a="pos").T
+            self.B = regression_on(SOO, Sigma[np.ix_(O, U)])
             self.S_UgO = _sym(Sigma[np.ix_(U, U)] - self.B @ Sigma[np.ix_(O, U)])
         if k:
-            self.beta = linalg.solve(SOO, Lambda[O], assume_a="pos").T
+            self.beta = regression_on(SOO, Lambda[O])
             self.e_var = np.diag(np.eye(k) - self.beta @ Lambda[O])
 
     def _alpha_coords(self):
