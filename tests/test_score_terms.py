@@ -97,6 +97,8 @@ def _scores(data, method):
     (None, "dense"),            # the premium side from the RTS moments, the shocks' from the formula
     ("gaps", "stretch"),        # dense head + coupled final stretch
     ("gaps", "dense"),
+    (None, "segments"),         # one stretch with a flat start
+    ("gaps", "segments"),       # stretches joined through their ends, dense dates between
 ])
 def test_disturbance_score_matches_statsmodels_complex_step(ragged, method):
     # Source: statsmodels MLEModel.score(approx_complex_step=True) — the complex-step derivative

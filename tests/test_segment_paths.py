@@ -220,7 +220,7 @@ def test_score_terms_of_every_path_equal_the_moments_formula_when_it_is_well_con
     # The disturbance smoother's terms (MomentGroup.score) are C^{-1} (M - n C) C^{-1} formed without
     # inverting C: where C is well conditioned the formula from the imputed moments is exact to
     # rounding too, so the two must agree — the stretch path's chains (dormant assets, coupled
-    # head) and the dense dates' RTS identity alike (the segment path forms none).
+    # head), the dense dates' RTS identity and the segment path's stretches alike.
     from panel.kalman.impute import score_sum
 
     rng = np.random.default_rng(5)
@@ -228,11 +228,12 @@ def test_score_terms_of_every_path_equal_the_moments_formula_when_it_is_well_con
     Sigma, H, parts = _model(rng, "factor")
     Si = np.linalg.inv(Sigma)
     terms = {}
-    for method in ("dense", "stretch"):
+    for method in ("dense", "stretch", "segments"):
         est = paths.Plan(Y, method=method, terms=True).estep(Sigma, H, h_parts=parts)
         total, n = impute_sum(est.w_groups, Sigma)
         formula = Si @ (total - n * Sigma) @ Si
         terms[method] = score_sum(est.w_groups, N)
         assert terms[method] is not None
         np.testing.assert_allclose(terms[method], formula, atol=1e-10 * np.abs(formula).max())
-    np.testing.assert_allclose(terms["stretch"], terms["dense"], atol=1e-12 * np.abs(terms["dense"]).max())
+    for method in ("stretch", "segments"):
+        np.testing.assert_allclose(terms[method], terms["dense"], atol=1e-12 * np.abs(terms["dense"]).max())

@@ -188,7 +188,8 @@ class Plan:
             try:
                 return segments.segment_estep(
                     self.segments, Sigma, H, h_parts=h_parts,
-                    bounded=self._bounded(segments.dense_equivalent(self.segments.segments)))
+                    bounded=self._bounded(segments.dense_equivalent(self.segments.segments)),
+                    terms=self.terms)
             except np.linalg.LinAlgError:   # singular Sigma_OO with dormant assets: dense copes
                 return self._dense_estep(Sigma, H)
         if self.data is None:

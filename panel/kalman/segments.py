@@ -33,7 +33,7 @@ from scipy import linalg
 
 from panel.kalman import bridge, dense, impute
 from panel.kalman.checkpoints import BlockView, Recomputed, checkpoint_interval
-from panel.kalman.dense import LOG2PI, _FilterStep, _memo, _solve_right_pd, _sym
+from panel.kalman.dense import LOG2PI, _disturbance_terms, _FilterStep, _memo, _solve_right_pd, _sym
 from panel.kalman.stretch import regression_on, simultaneous_diagonalisation
 from panel.kalman.types import EStep, MomentGroup
 
@@ -159,24 +159,27 @@ class _Moments:
     def __init__(self, N, C):
         self.N, self.sums, self.folding = N, {}, impute.Folding(C)
 
-    def add(self, members, count, M):
+    def add(self, members, count, M, score=None):
+        """``score``: the dates' disturbance-smoother terms over ``members`` (None: not formed, and
+        the group then has none)."""
         key = np.asarray(members).tobytes()
         hit = self.sums.get(key)
         if hit is None:
             full = len(self.sums) >= impute.MAX_GROUPS and not self.folding.failed
             if full and self.folding.fold(self._live()):
                 self.sums = {}
-            self.sums[key] = [np.asarray(members), count, M]
+            self.sums[key] = [np.asarray(members), count, M, score]
         else:
             hit[1] += count
             hit[2] = hit[2] + M
+            hit[3] = None if hit[3] is None or score is None else hit[3] + score
 
     def _live(self):
         out = []
-        for members, count, M in self.sums.values():
+        for members, count, M, score in self.sums.values():
             mask = np.zeros(self.N, bool)
             mask[members] = True
-            out.append(MomentGroup(mask, count, _sym(M)))
+            out.append(MomentGroup(mask, count, _sym(M), score=None if score is None else _sym(score)))
         return out
 
     def groups(self):
@@ -213,6 +216,7 @@ class _StretchSolve:
         if prior is None:                               # flat start: A = O, no past
             mu0, mue, c00, c0e, cee, ll = bridge.diffuse_ends(ef, d, L)
             self.loglik = ll.sum() + (L - 1) * logdet_v
+            self._update = ("flat", ef, (L - 1.0) * d, Sigma[np.ix_(A, A)])
             self.mj = np.concatenate([W @ mu0, W @ mue])
             self.Pj = np.block([[(W * c00) @ W.T, (W * c0e) @ W.T],
                                 [(W * c0e) @ W.T, (W * cee) @ W.T]])
@@ -239,6 +243,7 @@ class _StretchSolve:
             self.Pj = _sym(Pj - X @ X.T)
             self.loglik = (const.sum() - np.log(np.diag(cf)).sum() - 0.5 * u @ u
                            + L * logdet_v)
+            self._update = ("prior", cf, u, PZ, SA)
         if st.u_pos.size:
             U = A[st.u_pos]
             SOO = Sigma[np.ix_(O, O)]
@@ -250,9 +255,11 @@ class _StretchSolve:
         nA = self.st.A.size
         return self.mj[nA:], self.Pj[nA:, nA:]
 
-    def moments(self, ms_e, Ps_e, last: bool, acc_w: _Moments, acc_e: _Moments):
-        """Add the stretch's EM sums given the smoothed end ``(ms_e, Ps_e)``; returns the smoothed
-        first state ``(ms_a, Ps_a)``."""
+    def moments(self, ms_e, Ps_e, last: bool, acc_w: _Moments, acc_e: _Moments,
+                terms: bool = False):
+        """Add the stretch's EM sums given the smoothed end ``(ms_e, Ps_e)`` (``terms``: with the
+        premium innovations' score terms, :meth:`premium_terms`); returns the smoothed first
+        state ``(ms_a, Ps_a)``."""
         st, V, W = self.st, self.V, self.W
         nA, op, L = st.A.size, st.o_pos, st.L
         mf_e, Pf_e = self.end()
@@ -288,11 +295,76 @@ class _StretchSolve:
             M[np.ix_(op, up)] = BM.T
             M[np.ix_(up, up)] = (BM @ B.T + B @ C.T + (L - 2) * self.S_UgO + xx / (L - 1))
             MwO = M
-        acc_w.add(st.A, L - 1, MwO)
+        score = self.premium_terms(ms_e, Ps_e, last, mu0, P00) if terms else None
+        acc_w.add(st.A, L - 1, MwO, score)
         return ms_a, Ps_a
 
+    def premium_terms(self, ms_e, Ps_e, last: bool, mu0, P00) -> np.ndarray:
+        """``sum_t (r_t r_t' - N_t)`` of the stretch's premium innovations over ``A`` (nA, nA),
+        exact as an own variance nears zero (:class:`panel.kalman.types.MomentGroup`).
 
-def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = False) -> EStep:
+        Split ``w_t = omega / (L-1) + b_t`` with ``omega = x_e - x_a`` (prior ``Q = (L-1)
+        Sigma_AA``) and the bridge increments ``b_t`` (zero sum, independent of ``omega``): the
+        terms are ``(L-1) (g g' - N_omega)`` with ``E[omega] = Q g``, ``Var(omega) = Q - Q N Q``,
+        formed from the joint update and the smoothed end without ``Q^{-1}`` (Durbin & Koopman
+        2012, section 4.5), plus the chains' bridge terms on ``O``: given the ends, a chain's
+        deviation from the straight line between them has coordinates ``d (zeta - h) / (lam +
+        d)`` (``h`` the line's, ``(a alpha_0 + b alpha_e) / lam``) and noise ``d / (lam + d)``,
+        so over ``d^2`` nothing is divided by ``d``.  Dormant assets' bridges are seen only
+        through their sums, and add nothing (their conditional is the model's)."""
+        st, V, W, d = self.st, self.V, self.W, self.d
+        op, L, nA, n = st.o_pos, st.L, st.A.size, st.O.size
+        kind, *upd = self._update
+        if kind == "prior":
+            cf, u, PZ, SA = upd
+            Q = (L - 1) * SA
+            Si = linalg.cho_solve((cf, True), np.eye(2 * n), check_finite=False)
+            Sv = linalg.solve_triangular(cf, u, lower=True, trans="T", check_finite=False)
+            QV = Q[:, op] @ V                                  # Cov(omega, nu_e)
+            g = np.zeros(nA)
+            g[op] = V @ Sv[n:]                                 # Z_omega' S^{-1} v
+            N = np.zeros((nA, nA))
+            N[np.ix_(op, op)] = V @ Si[n:, n:] @ V.T           # Z_omega' S^{-1} Z_omega
+            Kt = np.eye(nA)                                    # Cov(omega, x_e) = Q Kt
+            Kt[op] -= V @ (Si[n:] @ PZ[nA:].T)
+            C_ao = -PZ[:nA] @ (Si[:, n:] @ QV.T)               # Cov(x_a, omega)
+        else:                                                  # flat start: A = O, chainwise
+            ef, kinv, SA = upd
+            Q = (L - 1) * SA
+            q = ef.det * kinv + ef.o00 + ef.oee + 2.0 * ef.o0e
+            QV = W * kinv
+            g = V @ (((ef.o00 + ef.o0e) * ef.he - (ef.o0e + ef.oee) * ef.h0) / q)
+            N = (V * (ef.det / q)) @ V.T
+            Kt = (V * ((ef.o00 + ef.o0e) / q)) @ W.T
+            C_ao = (W * (-kinv * (ef.o0e + ef.oee) / q)) @ W.T
+        if not last:                    # the future, through the smoothed end (RTS identity)
+            mf_e, Pf_e = self.end()
+            c = linalg.cho_factor(Pf_e, lower=True, check_finite=False)
+            r_e = linalg.cho_solve(c, ms_e - mf_e, check_finite=False)
+            N_e = linalg.cho_solve(c, linalg.cho_solve(c, Pf_e - Ps_e, check_finite=False).T,
+                                   check_finite=False)
+            g = g + Kt @ r_e
+            N = N + Kt @ N_e @ Kt.T
+            C_ao = C_ao - self.Pj[:nA, nA:] @ N_e @ (Kt.T @ Q)
+        R = (L - 1) * (np.outer(g, g) - N)
+        # the chains' bridges, in chain coordinates alpha_0 = V' x_a[O], delta = V' omega[O]
+        Ed = QV.T @ g
+        Vd = np.diag((L - 1) * d) - QV.T @ N @ QV
+        C0d = V.T @ C_ao[np.ix_(op, op)] @ V
+        eb, inv = st.basis, self.ef.inv
+        lam = eb.lam[:, None]
+        ha, hb = ((eb.a + eb.b) / eb.lam)[:, None], (eb.b / eb.lam)[:, None]
+        Y = inv * (self.zeta - ha * mu0[None, :] - hb * Ed[None, :])
+        Ia, Ib = inv * ha, inv * hb
+        Aab = Ia.T @ (lam * Ib)
+        Rb = (Y.T @ (lam * Y) + (Ia.T @ (lam * Ia)) * P00 + Aab * C0d + (Aab * C0d).T
+              + (Ib.T @ (lam * Ib)) * Vd - np.diag(inv.sum(axis=0)))
+        R[np.ix_(op, op)] += V @ Rb @ V.T
+        return R
+
+
+def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = False,
+                  terms: bool = False) -> EStep:
     """Log-likelihood and EM moments at ``(Sigma, H)`` on the segment path (same result as
     :func:`panel.kalman.dense.dense_smoother`'s ``estep``, to rounding; beyond
     :data:`panel.kalman.impute.MAX_GROUPS` component sets the moments come collapsed under
@@ -300,7 +372,10 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = Fal
 
     ``bounded``: keep the forward pass's records (covariances, stretch solutions) only every
     ~sqrt(n / 4) of the n segments and recompute a block at a time for the backward pass
-    (:mod:`panel.kalman.checkpoints`; the same numbers bit for bit, about one more forward pass)."""
+    (:mod:`panel.kalman.checkpoints`; the same numbers bit for bit, about one more forward pass).
+    ``terms``: the premium innovations' groups also carry their score terms (stretches:
+    :meth:`_StretchSolve.premium_terms`; steps between dates: the RTS identity of
+    :func:`panel.kalman.dense._disturbance_terms`)."""
     Sigma = np.asarray(Sigma, dtype=float)
     H = np.asarray(H, dtype=float)
     Y, obs, s2, init = plan.Y, plan.obs, plan.s2, plan.init
@@ -366,7 +441,7 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = Fal
         rec = recs[i]
         if rec[0] == "dense":
             _, t, before, alive, mp, Pp, mf, Pf = rec
-            ms, Ps = (mf, Pf) if later is None else _rts(mf, Pf, alive, later, acc_w)
+            ms, Ps = (mf, Pf) if later is None else _rts(mf, Pf, alive, later, acc_w, terms)
             O = np.flatnonzero(obs[t])
             if O.size:
                 po = np.searchsorted(alive, O)
@@ -375,15 +450,16 @@ def segment_estep(plan: SegmentPlan, Sigma, H, h_parts=None, bounded: bool = Fal
         else:
             _, sol, before, alive, mp, Pp = rec
             mf, Pf = sol.end()
-            ms_e, Ps_e = (mf, Pf) if later is None else _rts(mf, Pf, alive, later, acc_w)
-            ms, Ps = sol.moments(ms_e, Ps_e, later is None, acc_w, acc_e)
+            ms_e, Ps_e = (mf, Pf) if later is None else _rts(mf, Pf, alive, later, acc_w, terms)
+            ms, Ps = sol.moments(ms_e, Ps_e, later is None, acc_w, acc_e, terms)
         later = (ms, Ps, mp, Pp, before, alive)
     return EStep(loglik, acc_w.groups(), acc_e.groups())
 
 
-def _rts(mf, Pf, alive, later, acc_w: _Moments):
+def _rts(mf, Pf, alive, later, acc_w: _Moments, terms: bool = False):
     """RTS step from the next segment's first date back to this segment's last date (assets
-    ``alive``); adds the moment of that date's premium innovation (over ``alive``)."""
+    ``alive``); adds the moment of that date's premium innovation (over ``alive``), with its score
+    terms if ``terms``."""
     ms_n, Ps_n, mp_n, Pp_n, before, alive_n = later
     pos = np.searchsorted(alive_n, before)
     J = _solve_right_pd(Pf.T, Pp_n)
@@ -392,5 +468,6 @@ def _rts(mf, Pf, alive, later, acc_w: _Moments):
     K = Ps_pos @ J.T
     Ps = _sym(Pf + J @ (K - Pf))
     dw = ms_pos - ms
-    acc_w.add(alive, 1, np.outer(dw, dw) + Ps_pos + Ps - K - K.T)
+    acc_w.add(alive, 1, np.outer(dw, dw) + Ps_pos + Ps - K - K.T,
+              _disturbance_terms(Pp_n, ms_pos - mp_n, Ps_pos) if terms else None)
     return ms, Ps
