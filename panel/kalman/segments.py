@@ -318,16 +318,18 @@ class _StretchSolve:
         if kind == "prior":
             cf, u, PZ, SA = upd
             Q = (L - 1) * SA
-            Si = linalg.cho_solve((cf, True), np.eye(2 * n), check_finite=False)
+            E = np.zeros((2 * n, n))
+            E[n:] = np.eye(n)
+            Se = linalg.cho_solve((cf, True), E, check_finite=False)   # S^{-1}'s e columns
             Sv = linalg.solve_triangular(cf, u, lower=True, trans="T", check_finite=False)
             QV = Q[:, op] @ V                                  # Cov(omega, nu_e)
             g = np.zeros(nA)
             g[op] = V @ Sv[n:]                                 # Z_omega' S^{-1} v
             N = np.zeros((nA, nA))
-            N[np.ix_(op, op)] = V @ Si[n:, n:] @ V.T           # Z_omega' S^{-1} Z_omega
+            N[np.ix_(op, op)] = V @ Se[n:] @ V.T               # Z_omega' S^{-1} Z_omega
             Kt = np.eye(nA)                                    # Cov(omega, x_e) = Q Kt
-            Kt[op] -= V @ (Si[n:] @ PZ[nA:].T)
-            C_ao = -PZ[:nA] @ (Si[:, n:] @ QV.T)               # Cov(x_a, omega)
+            Kt[op] -= V @ (PZ[nA:] @ Se).T
+            C_ao = -(PZ[:nA] @ Se) @ QV.T                      # Cov(x_a, omega)
         else:                                                  # flat start: A = O, chainwise
             ef, kinv, SA = upd
             Q = (L - 1) * SA
@@ -343,9 +345,10 @@ class _StretchSolve:
             r_e = linalg.cho_solve(c, ms_e - mf_e, check_finite=False)
             N_e = linalg.cho_solve(c, linalg.cho_solve(c, Pf_e - Ps_e, check_finite=False).T,
                                    check_finite=False)
+            KN = Kt @ N_e
             g = g + Kt @ r_e
-            N = N + Kt @ N_e @ Kt.T
-            C_ao = C_ao - self.Pj[:nA, nA:] @ N_e @ (Kt.T @ Q)
+            N = N + KN @ Kt.T
+            C_ao = C_ao - self.Pj[:nA, nA:] @ (KN.T @ Q)
         R = (L - 1) * (np.outer(g, g) - N)
         # the chains' bridges, in chain coordinates alpha_0 = V' x_a[O], delta = V' omega[O]
         Ed = QV.T @ g
