@@ -139,7 +139,7 @@ class Plan:
     ``Y`` (T, N) decimal returns with NaN; ``scale2`` (T,) squared volatility scale or None;
     ``init`` the informative initial premium ``(mean, var)`` or None; ``terms``: the E-steps'
     moment groups also carry the disturbance smoother's score terms where the path forms them
-    (the stretch path's chains and every dense date's premium innovations; not the segment path).
+    (every path's premium innovations; the shocks on the stretch path's final stretch).
     A fit calls :meth:`estep` hundreds of times on the same panel.
     """
 

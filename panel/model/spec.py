@@ -209,18 +209,19 @@ class ModelSpec:
         E-steps on the copy, against 4 and 1,142 and 1,629.  :meth:`from_dict` reads settings
         without the key as False, so stored runs reproduce.
     score_form : {"disturbance", "moments"}
-        How the score (Fisher's identity) of the quasi-Newton finish, the active set's release
-        test and the standard errors is formed.  "disturbance" (default): from the disturbance
-        smoother's terms ``r r' - N`` (Koopman & Shephard 1992) where the E-step path gives them
-        (the stretch path's final stretch, so every balanced panel and filled copy, for both
-        premia and shocks; dense dates for the premia), else from the moments (the segment path).  "moments": ``C^{-1} (S - n C) C^{-1}`` from the EM moments ``S``, whose
-        difference cancels digits as a variance nears its floor: at the optimum of the 18
-        size-sorted portfolios of linearmodels' French data since 1990, two floored own premium
-        variances had scores of the wrong sign and a loading's was off by a factor 2-5.  Measured
-        on 18 fits (12 Fama-French portfolio sets and specs, 6 simulated panels): 7,807 E-steps
-        against 4,295 (median 297 against 229), three fits stalled against none, and every fit
-        ended at the same or a lower optimum (by up to 0.018).  :meth:`from_dict` reads settings
-        without the key as "moments".
+        How the score (Fisher's identity) of the quasi-Newton finish, the active set's release test
+        and the standard errors is formed.  "disturbance" (default): from the disturbance smoother's
+        terms ``r r' - N`` (Koopman & Shephard 1992) formed by every E-step path (for the premia
+        everywhere; for the shocks on the stretch path's final stretch, so every balanced panel and
+        filled copy; the other shocks from the moments).  "moments": ``C^{-1} (S - n C) C^{-1}``
+        from the EM moments ``S``, whose difference cancels digits as a variance nears its floor: at
+        the optimum of the 18 size-sorted portfolios of linearmodels' French data since 1990, two
+        floored own premium variances had scores of the wrong sign and a loading's was off by a
+        factor 2-5.  Measured on 18 fits (12 Fama-French portfolio sets and specs, 6 simulated
+        panels): 7,807 E-steps against 4,295 (median 297 against 229), three fits stalled against
+        none, and every fit ended at the same or a lower optimum (by up to 0.018); on five ragged
+        Fama-French panels 2,377 against 1,213.  The terms cost 1.01-1.7x an E-step's CPU, by path.
+        :meth:`from_dict` reads settings without the key as "moments".
     max_iter : int
         Maximum EM iterations (E-steps; with ``finish`` on the filled copy, its E-steps and the
         exact passes on the panel together).
