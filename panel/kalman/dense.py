@@ -405,9 +405,9 @@ class _MomentSum:
 
 
 def _disturbance_terms(Pp: np.ndarray, dm: np.ndarray, Ps: np.ndarray) -> np.ndarray:
-    """``r r' - N`` of the state disturbance into a date (Durbin & Koopman 2012, section 4.5.3)
-    from the RTS moments: with predicted ``(a, Pp)`` and smoothed ``(a + dm, Ps)``, ``r = Pp^{-1}
-    dm`` and ``N = Pp^{-1} (Pp - Ps) Pp^{-1}``.  Dividing by ``Pp`` (filter uncertainty plus
+    """``r r' - N`` of the state disturbance into a date (Durbin & Koopman 2012, ch. 4, disturbance
+    smoothing) from the RTS moments: with predicted ``(a, Pp)`` and smoothed ``(a + dm, Ps)``, ``r =
+    Pp^{-1} dm`` and ``N = Pp^{-1} (Pp - Ps) Pp^{-1}``. Dividing by ``Pp`` (filter uncertainty plus
     ``Sigma``) instead of ``Sigma`` keeps it exact as a variance in ``Sigma`` nears zero."""
     c = _chol(Pp)
     X = np.outer(dm, dm) - Pp + Ps

@@ -306,12 +306,12 @@ class _StretchSolve:
         Split ``w_t = omega / (L-1) + b_t`` with ``omega = x_e - x_a`` (prior ``Q = (L-1)
         Sigma_AA``) and the bridge increments ``b_t`` (zero sum, independent of ``omega``): the
         terms are ``(L-1) (g g' - N_omega)`` with ``E[omega] = Q g``, ``Var(omega) = Q - Q N Q``,
-        formed from the joint update and the smoothed end without ``Q^{-1}`` (Durbin & Koopman
-        2012, section 4.5), plus the chains' bridge terms on ``O``: given the ends, a chain's
-        deviation from the straight line between them has coordinates ``d (zeta - h) / (lam +
-        d)`` (``h`` the line's, ``(a alpha_0 + b alpha_e) / lam``) and noise ``d / (lam + d)``,
-        so over ``d^2`` nothing is divided by ``d``.  Dormant assets' bridges are seen only
-        through their sums, and add nothing (their conditional is the model's)."""
+        formed from the joint update and the smoothed end without ``Q^{-1}`` (Durbin & Koopman 2012,
+        ch. 4, disturbance smoothing), plus the chains' bridge terms on ``O``: given the ends, a
+        chain's deviation from the straight line between them has coordinates ``d (zeta - h) / (lam
+        + d)`` (``h`` the line's, ``(a alpha_0 + b alpha_e) / lam``) and noise ``d / (lam + d)``, so
+        over ``d^2`` nothing is divided by ``d``. Dormant assets' bridges are seen only through
+        their sums, and add nothing (their conditional is the model's)."""
         st, V, W, d = self.st, self.V, self.W, self.d
         op, L, nA, n = st.o_pos, st.L, st.A.size, st.O.size
         kind, *upd = self._update
