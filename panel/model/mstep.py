@@ -294,20 +294,24 @@ def expected_complete_loglik_grad(est, p: Params, rs: ResolvedSpec, packer, sigm
     for groups, C, L, d, prior in ((est.w_groups, p.Sigma, p.Lambda, p.q, sigma_prior),
                                    (est.e_groups, p.H, B, psi, h_prior)):
         # dQ/dC is linear in the groups: those with the path's exact terms add them, the rest
-        # (the segment path, dense dates' shocks) go through the formula with the prior
+        # (the shocks of dense dates and of segment stretches) go through the formula, as the
+        # prior does
         exact = [g for g in groups if g.score is not None] if rs.score_form == "disturbance" else []
-        terms = score_sum(exact, N) if exact else None
+        terms = score_sum(exact, N) if exact else np.zeros((N, N))
         total, n = impute_sum([g for g in groups if g.score is None] if exact else groups, C)
         total[np.diag_indices_from(total)] += prior.weight * prior.v
         n += prior.weight
         if L is None:                                        # full H: all of dQ/dH
-            Ci = np.linalg.inv(C)
-            G = -0.5 * (n * Ci - Ci @ total @ Ci)
-            blocks.append(G if terms is None else G + 0.5 * terms)
+            G = 0.5 * terms
+            if n:
+                Ci = np.linalg.inv(C)
+                G = G - 0.5 * (n * Ci - Ci @ total @ Ci)
+            blocks.append(G)
             continue
-        GL, Gdiag = _score_blocks(total, n, L, d)
-        if terms is not None:
-            GL, Gdiag = GL + 0.5 * (terms @ L), Gdiag + 0.5 * np.diag(terms)
+        GL, Gdiag = 0.5 * (terms @ L), 0.5 * np.diag(terms)
+        if n:                           # nothing left to the formula: it would add zeros
+            FL, Fdiag = _score_blocks(total, n, L, d)
+            GL, Gdiag = GL + FL, Gdiag + Fdiag
         blocks.append((GL, Gdiag))
     (GS_L, GS_diag), GH = blocks
     parts = [(2.0 * GS_L)[packer.lam_free], (p.q * GS_diag)[packer.free_q]]
