@@ -148,3 +148,34 @@ def test_score_form_setting_reads_back_and_refuses_unknown_values():
     line = {form: dict(setting_lines(ModelSpec(score_form=form), {}, p, 12))["estimation"]
             for form in ("disturbance", "moments")}
     assert "score from the moments)" in line["moments"] and "moments" not in line["disturbance"]
+
+
+@pytest.mark.parametrize("method", ["dense", "segments"])
+def test_em_steps_skip_the_terms_and_the_fit_does_not_move(method, monkeypatch):
+    # EM and SQUAREM steps never take the score, so their E-steps skip its terms; the finish's
+    # E-steps (the hand-over point's redone) all carry them, and the fit is the same bit for bit
+    # as with every E-step scored.
+    data = _industries("gaps")
+    spec = ModelSpec(std_errors="never", method=method)
+    real_estep, real_grad = Problem.estep, ms.expected_complete_loglik_grad
+    calls = {True: 0, False: 0}
+    complete = []
+
+    def estep(self, p, scored=True):
+        calls[scored] += 1
+        return real_estep(self, p, scored)
+
+    def grad(e, *args, **kwargs):
+        complete.append(all(g.score is not None for g in e.w_groups))
+        return real_grad(e, *args, **kwargs)
+
+    monkeypatch.setattr(Problem, "estep", estep)
+    monkeypatch.setattr(ms, "expected_complete_loglik_grad", grad)
+    fast = panel.fit(data, spec)
+    assert calls[False] >= 10 and calls[True] >= 10
+    assert complete and all(complete)
+    monkeypatch.setattr(Problem, "em_estep", lambda self, p: real_estep(self, p, True))
+    slow = panel.fit(data, spec)
+    assert (fast.n_iter, fast.objective, fast.message) == (slow.n_iter, slow.objective, slow.message)
+    for name in ("Sigma", "H"):
+        np.testing.assert_array_equal(getattr(fast.params, name), getattr(slow.params, name))

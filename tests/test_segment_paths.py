@@ -237,3 +237,27 @@ def test_score_terms_of_every_path_equal_the_moments_formula_when_it_is_well_con
         np.testing.assert_allclose(terms[method], formula, atol=1e-10 * np.abs(formula).max())
     for method in ("stretch", "segments"):
         np.testing.assert_allclose(terms[method], terms["dense"], atol=1e-12 * np.abs(terms["dense"]).max())
+
+
+@pytest.mark.parametrize("pattern", PATTERNS)
+def test_an_unscored_estep_has_the_same_loglik_and_moments_bit_for_bit(pattern):
+    # EM steps never take the score, so their E-steps skip its terms (Plan.estep(scored=False));
+    # the stretch path's final stretch keeps them, since its moments are built from them.  Same
+    # numbers to the last bit, so a fit's path does not move (stored runs reproduce).
+    rng = np.random.default_rng(11)
+    Y = _panel(rng, pattern)
+    Sigma, H, parts = _model(rng, "factor")
+    for method in ("dense", "stretch", "segments"):
+        plan = paths.Plan(Y, method=method, terms=True)
+        full = plan.estep(Sigma, H, h_parts=parts)
+        bare = plan.estep(Sigma, H, h_parts=parts, scored=False)
+        assert bare.loglik == full.loglik
+        for mine, theirs in ((bare.w_groups, full.w_groups), (bare.e_groups, full.e_groups)):
+            assert [(g.mask.tobytes(), g.count) for g in mine] == \
+                [(g.mask.tobytes(), g.count) for g in theirs]
+            for a, b in zip(mine, theirs):
+                assert np.array_equal(a.M, b.M)
+        assert all(g.score is not None for g in full.w_groups)
+        # the terms are skipped where they do not build the moments
+        kept = [g.score is not None for g in bare.w_groups]
+        assert not any(kept) or (method == "stretch" and pattern == "balanced")

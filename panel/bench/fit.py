@@ -174,7 +174,8 @@ def _ours(frame, time_budget, want_iteration=True, finish="auto"):
     out["estep_s"], _ = _best(lambda: prob.estep(p0), 3)
     if want_iteration:
         out["em_iter_s"], _ = _best(
-            lambda: ms.mstep(prob.estep(p0), p0, prob.rs, floor, prob.sigma_prior, prob.h_prior), 3)
+            lambda: ms.mstep(prob.em_estep(p0), p0, prob.rs, floor, prob.sigma_prior, prob.h_prior),
+            3)
     out["report_s"], _ = _best(lambda: paths.report(prob.Y, p0.Sigma, p0.H, prob.s2, prob.init,
                                                     Lambda=p0.Lambda), 1)
     t0 = time.perf_counter()

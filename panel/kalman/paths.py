@@ -158,15 +158,19 @@ class Plan:
             if a < T:
                 self.data = StretchData(self.Y, self.s2, a)
 
-    def estep(self, Sigma, H, h_parts=None) -> EStep:
+    def estep(self, Sigma, H, h_parts=None, scored: bool = True) -> EStep:
         """Log-likelihood and EM moments at ``(Sigma, H)``; ``h_parts = (B, psi)`` when
         ``H = B B' + diag(psi)`` (a cheaper exact eigenproblem on the stretch path).
+        ``scored=False``: an E-step whose score is not taken (an EM step's): the terms are formed
+        only where the moments are built from them (the stretch path's final stretch), so the
+        log-likelihood and moments are those of ``scored=True`` bit for bit, for up to a third less
+        on ragged panels.
 
         Beyond :data:`panel.kalman.impute.MAX_GROUPS` observed sets, the moments come as one group
         imputed under ``Sigma`` (premium innovations) and ``H`` (return shocks), so the result holds
         O(N^2) whatever the gap pattern: use it with these same parameters (as the M-step and the
         score do)."""
-        return _collapsed(self._estep(Sigma, H, h_parts), Sigma, H)
+        return _collapsed(self._estep(Sigma, H, h_parts, scored), Sigma, H)
 
     def estep_with_means(self, Sigma, H, h_parts=None) -> tuple[EStep, np.ndarray]:
         """:meth:`estep` and the smoothed premia (T, N) (NaN before an asset's first observation)
@@ -183,29 +187,30 @@ class Plan:
                                    terms=self.terms)
         return _collapsed(out.estep, Sigma, H), out.smoothed_mean
 
-    def _estep(self, Sigma, H, h_parts) -> EStep:
+    def _estep(self, Sigma, H, h_parts, scored: bool = True) -> EStep:
+        terms = self.terms and scored
         if self.segments is not None:
             try:
                 return segments.segment_estep(
                     self.segments, Sigma, H, h_parts=h_parts,
                     bounded=self._bounded(segments.dense_equivalent(self.segments.segments)),
-                    terms=self.terms)
+                    terms=terms)
             except np.linalg.LinAlgError:   # singular Sigma_OO with dormant assets: dense copes
-                return self._dense_estep(Sigma, H)
+                return self._dense_estep(Sigma, H, terms)
         if self.data is None:
-            return self._dense_estep(Sigma, H)
+            return self._dense_estep(Sigma, H, terms)
         return stretch_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_report=False,
-                                data=self.data, h_parts=h_parts,
-                                bounded=self._bounded(self.data.a), terms=self.terms).estep
+                                data=self.data, h_parts=h_parts, bounded=self._bounded(self.data.a),
+                                terms=self.terms, head_terms=terms).estep
 
     def _bounded(self, dense_dates: int, k: int = 0) -> bool:
         """Recompute the dense dates' covariances rather than keep them all (KEEP_ALL_BYTES);
         ``k`` common factors carried in the state (a report with loadings)."""
         return keeps_all_bytes(dense_dates, self.Y.shape[1] + k) > KEEP_ALL_BYTES
 
-    def _dense_estep(self, Sigma, H) -> EStep:
+    def _dense_estep(self, Sigma, H, terms: bool) -> EStep:
         return dense_smoother(self.Y, Sigma, H, self.s2, init=self.init, want_estep=True,
-                              bounded=self._bounded(self.Y.shape[0]), terms=self.terms).estep
+                              bounded=self._bounded(self.Y.shape[0]), terms=terms).estep
 
     def report(self, Sigma, H, Lambda=None, cov_at=(), only_cov=False,
                bounded: bool | None = None) -> Smoothed:

@@ -397,7 +397,8 @@ def _prior(Y, Sigma, H, s2, init, Lambda, a, keep_every=None):
 
 def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(),
                      want_estep=True, want_report=True, data: StretchData | None = None,
-                     h_parts=None, only_cov=False, bounded=False, terms=False) -> Smoothed:
+                     h_parts=None, only_cov=False, bounded=False, terms=False,
+                     head_terms: bool | None = None) -> Smoothed:
     """Same contract and result as :func:`panel.kalman.dense.dense_smoother` (to rounding).
 
     ``data`` : the final stretch's :class:`StretchData` (built here when None; a fit builds it
@@ -407,8 +408,12 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     ``bounded=True``: the dense dates before the stretch run like
     :func:`panel.kalman.dense.dense_smoother`'s ``bounded`` (O(sqrt(a) (k+N)^2) memory for them).
     ``terms``: the moment groups also carry the disturbance smoother's score terms (the stretch's
-    from the chains, :meth:`_Tail.premium_terms`; the dense dates' as in ``dense_smoother``).
+    from the chains, :meth:`_Tail.premium_terms`; the dense dates' as in ``dense_smoother``);
+    ``head_terms`` (default ``terms``) for the dense dates alone.  The stretch's moments are built
+    from its terms when it has them, the dense dates' never: ``terms=True, head_terms=False`` gives
+    the same moments bit for bit, for less (an E-step whose score is not taken).
     """
+    head_terms = terms if head_terms is None else head_terms
     Y = np.asarray(Y, dtype=float)
     Sigma = np.asarray(Sigma, dtype=float)
     H = np.asarray(H, dtype=float)
@@ -417,7 +422,7 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
     a = final_stretch_start(Y) if data is None else data.a
     if a >= T:
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
-                                    want_estep=want_estep, bounded=bounded, terms=terms)
+                                    want_estep=want_estep, bounded=bounded, terms=head_terms)
     data = StretchData(Y, s2, a) if data is None else data
     cov_at = set(cov_at)
     keep = checkpoint_interval(a) if bounded else None
@@ -426,7 +431,7 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
         tail = _Tail(data, Sigma, H, prior, Lambda, want_var=want_report, h_parts=h_parts)
     except linalg.LinAlgError:      # singular Sigma_OO with dormant assets or factors: dense copes
         return dense.dense_smoother(Y, Sigma, H, s2, init=init, Lambda=Lambda, cov_at=cov_at,
-                                    want_estep=want_estep, bounded=bounded, terms=terms)
+                                    want_estep=want_estep, bounded=bounded, terms=head_terms)
     k = tail.k
     loglik = tail.loglik
     w_groups, e_groups = tail.groups(terms) if want_estep else ([], [])
@@ -440,7 +445,7 @@ def stretch_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at
                              cov_at={t for t in cov_at if t < a}, want_estep=want_estep,
                              terminal=(tail.m_star, tail.P_star, prior[0], prior[1], prior[2]),
                              fold_under=(Sigma, H) if bounded and want_estep else None,
-                             terms=terms)
+                             terms=head_terms)
         if want_estep:
             w_groups = _merge(head.estep.w_groups, w_groups)
             e_groups = _merge(head.estep.e_groups, e_groups)

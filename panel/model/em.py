@@ -58,7 +58,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
            max_iter: int, time_budget: float | None, accelerate: bool, score=None,
            bounds=None, extrapolate: bool = True, project=None, progress=None,
            loglik_tol: float | None = None, stopping: str = "gain-model", cap=None,
-           keep: dict | None = None) -> EMOutcome:
+           keep: dict | None = None, em_estep=None) -> EMOutcome:
     """Iterate to a stationary point of the objective (log-likelihood plus log prior).
 
     ``estep(p) -> EStep``, ``mstep(e, p) -> Params``, ``objective(e, p) -> float``;
@@ -76,14 +76,21 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
     legacy finish never gets it: ``panel.model.fit._quasi_newton_setup``).
     ``keep``: a dict the active-set finish fills with its last round's coordinates and curvature
     pairs (``coords``, ``curvature``), for a finish that goes on from them (:mod:`panel.model.warm`).
+    ``em_estep(p)``: the E-step of the EM and SQUAREM steps, whose score is never taken (cheaper:
+    without the score's terms, same log-likelihood and moments); the E-step at the hand-over
+    point and the one returned are then redone by ``estep``, not counted again (the same point).
     """
     accelerate = accelerate and extrapolate
+    step_e = estep if em_estep is None else em_estep
+
+    def scored(p, e):
+        return e if em_estep is None else estep(p)
     lo = hi = None
     if bounds is not None:
         lo = np.array([-np.inf if b[0] is None else b[0] for b in bounds])
         hi = np.array([np.inf if b[1] is None else b[1] for b in bounds])
     start = time.perf_counter()
-    p, e = p0, estep(p0)
+    p, e = p0, step_e(p0)
     obj = objective(e, p)
     n = 1
     trace = _Trace(progress)
@@ -100,7 +107,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             status, message = "time_budget", f"stopped by the time budget of {time_budget:g} s"
             break
         p1 = mstep(e, p)
-        e1 = estep(p1)
+        e1 = step_e(p1)
         o1 = objective(e1, p1)
         n += 1
         step = "em"
@@ -112,7 +119,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             break
         if accelerate and n < max_iter:
             p2 = mstep(e1, p1)
-            e2 = estep(p2)
+            e2 = step_e(p2)
             o2 = objective(e2, p2)
             n += 1
             if o2 >= o1 - NOISE * abs(o1):
@@ -129,7 +136,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
                         pe = packer.unpack(te, p2)
                         if project is not None:
                             pe = project(pe)
-                        ee = estep(pe)
+                        ee = step_e(pe)
                         oe = objective(ee, pe)
                     except (np.linalg.LinAlgError, ValueError, FloatingPointError):
                         oe = -np.inf  # extrapolated point not admissible
@@ -147,6 +154,7 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
             status, message = "converged", f"converged after {n} E-steps"
             break
         if score is not None and rel < HANDOVER:
+            e = scored(p, e)
             remaining = None if time_budget is None else time_budget - elapsed()
             if loglik_tol is None:
                 p, e, obj, n, status, message = _quasi_newton(
@@ -156,9 +164,10 @@ def run_em(p0: Params, estep, mstep, objective, packer: Packer, *, tol: float, p
                 p, e, obj, n, status, message = _active_set_finish(
                     p, e, obj, n, estep, objective, score, packer, bounds, max_iter, remaining,
                     trace, elapsed, loglik_tol, stopping, cap, keep)
-            break
-    return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status, message=message,
-                     trace=tuple(trace))
+            return EMOutcome(params=p, estep=e, objective=obj, n_estep=n, status=status,
+                             message=message, trace=tuple(trace))
+    return EMOutcome(params=p, estep=scored(p, e), objective=obj, n_estep=n, status=status,
+                     message=message, trace=tuple(trace))
 
 
 class _Trace(list):

@@ -148,7 +148,8 @@ def check_estimable(Y: np.ndarray, assets, rs) -> None:
 
 def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
-    finish) and the score.  With factors and a premium-volatility cap the bound is not a box:
+    finish), the score, and the EM steps' E-step (``em_estep``: without the score's terms, which
+    they never take; :func:`panel.model.em.run_em`).  With factors and a premium-volatility cap the bound is not a box:
     SQUAREM's extrapolated points are projected onto it by the M-step's own rule (its safeguard
     keeps the objective monotone); with one factor (``cap_method="box"``) the finish then works in
     coordinates where the bound is a box (``cap``, :class:`panel.model.em._Coords`), with more
@@ -175,6 +176,8 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
         return ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior, prob.h_prior)
 
     qn = prob.spec.acceleration == "quasi-newton"
+    # EM steps never take the score: their E-steps skip its terms (same moments, for less)
+    base = {"bounds": bounds, "em_estep": prob.em_estep if prob.plan.terms else None}
     if rs.max_sigma_diag is not None and rs.k > 0:
         free_q = prob.packer.free_q
 
@@ -182,10 +185,10 @@ def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
             lam, q = ms.cap_premium(p.Lambda, p.q, rs.max_sigma_diag, free_q)
             return Params(Lambda=lam, q=q, H=p.H, B=p.B, psi=p.psi)
         if rs.k == 1 and prob.spec.cap_method == "box" and prob.spec.loglik_tol is not None:
-            return {"score": score if qn else None, "bounds": bounds, "project": project,
+            return {**base, "score": score if qn else None, "project": project,
                     "cap": (rs.max_sigma_diag, floor)}
-        return {"bounds": bounds, "project": project}
-    return {"score": score if qn else None, "bounds": bounds}
+        return {**base, "project": project}
+    return {**base, "score": score if qn else None}
 
 
 @blas_limited

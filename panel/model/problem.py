@@ -58,8 +58,14 @@ class Problem:
             return ms.PriorTerms()
         return ms.PriorTerms(weight=prior.weight, v=to_variance(prior.vol, self.rs.ppy))
 
-    def estep(self, p: Params):
-        return self.plan.estep(p.Sigma, p.H, h_parts=_h_parts(p))
+    def estep(self, p: Params, scored: bool = True):
+        """The E-step at ``p``; ``scored=False`` for one whose score is not taken (an EM step's:
+        :meth:`panel.kalman.paths.Plan.estep`)."""
+        return self.plan.estep(p.Sigma, p.H, h_parts=_h_parts(p), scored=scored)
+
+    def em_estep(self, p: Params):
+        """:meth:`estep` for an EM step (``scored=False``)."""
+        return self.estep(p, scored=False)
 
     def estep_with_means(self, p: Params):
         """(E-step, smoothed premia (T, N)) at ``p`` (:meth:`panel.kalman.paths.Plan.estep_with_means`)."""
