@@ -194,7 +194,7 @@ class ModelSpec:
         "direct" (default): on the panel itself.  "filled": mostly on a copy with its gaps filled
         by their conditional means, corrected by exact E-steps and certified by the same
         ``loglik_tol`` rule (:mod:`panel.model.surrogate`; ``filled_warm``): measured on N=100,
-        T=600 panels with 0.5% and 2% gaps, 5.6 s and 4.7 s against 224 s and 192 s, log-likelihoods
+        T=600 panels with 0.5% and 2% gaps, 5.07 s and 4.77 s against 198 s and 176 s, log-likelihoods
         5e-5 and 2e-4 apart.  Its path differs from the direct route's, and where the likelihood
         has several local optima (variances piled up at zero) the two can end in different ones:
         on 11 simulated N=60, T=300 panels with 2% gaps (the benchmark's simulator, seeds 1-11) it
