@@ -88,16 +88,28 @@ def route(prob, finish: str) -> bool:
     11 of N = 60, T = 300 did not: module docstring)."""
     if finish == "direct":
         return False
+    gaps = _fillable_here(prob)
+    if gaps is None:
+        return False
+    if finish == "filled":
+        return True
+    return _auto(prob, gaps)
+
+
+def _fillable_here(prob) -> np.ndarray | None:
+    """The panel's fillable gaps ((T, N) bool) where the filled route can run on it (it has gaps,
+    and the spec has the active-set finish the corrected surrogate needs), else None."""
     spec = prob.spec
     capped = prob.rs.max_sigma_diag is not None and prob.rs.k > 0
     if (spec.acceleration != "quasi-newton" or spec.loglik_tol is None
             or (capped and (prob.rs.k > 1 or spec.cap_method != "box"))):
-        return False                      # the corrected surrogate needs the active-set finish
+        return None
     gaps = fillable(prob.Y)
-    if not gaps.any():
-        return False
-    if finish == "filled":
-        return True
+    return gaps if gaps.any() else None
+
+
+def _auto(prob, gaps: np.ndarray) -> bool:
+    """Whether "auto" takes the filled route for a panel with these ``gaps``."""
     if prob.rs.k > 1 or prob.rs.r > 1:
         return False                      # several local optima: keep the direct route's path
     span = prob.Y.shape[0] - (~np.isnan(prob.Y)).argmax(axis=0)       # from each asset's entry
@@ -117,10 +129,8 @@ def _pays(prob, gaps: np.ndarray) -> bool:
 def missed_gaps(prob) -> int:
     """The number of gap cells of a panel fitted on itself (``finish="direct"``) whose fit the
     filled route would have made much cheaper (:func:`_pays`), else 0: the fit's message says so."""
-    if prob.spec.finish != "direct" or not route(prob, "filled"):
-        return 0
-    gaps = fillable(prob.Y)
-    return int(gaps.sum()) if _pays(prob, gaps) else 0
+    gaps = None if prob.spec.finish != "direct" else _fillable_here(prob)
+    return int(gaps.sum()) if gaps is not None and _pays(prob, gaps) else 0
 
 
 def estimate(prob, p0, floor, progress, setup) -> EMOutcome:
