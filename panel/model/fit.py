@@ -149,11 +149,11 @@ def check_estimable(Y: np.ndarray, assets, rs) -> None:
 def _quasi_newton_setup(prob: Problem, floor: np.ndarray) -> dict:
     """Box bounds of the packed parameters (for SQUAREM's extrapolation and the quasi-Newton
     finish), the score, and the EM steps' E-step (``em_estep``: without the score's terms, which
-    they never take; :func:`panel.model.em.run_em`).  With factors and a premium-volatility cap the bound is not a box:
-    SQUAREM's extrapolated points are projected onto it by the M-step's own rule (its safeguard
-    keeps the objective monotone); with one factor (``cap_method="box"``) the finish then works in
-    coordinates where the bound is a box (``cap``, :class:`panel.model.em._Coords`), with more
-    there is no quasi-Newton finish."""
+    they never take; :func:`panel.model.em.run_em`).  With factors and a premium-volatility cap
+    the bound is not a box: SQUAREM's extrapolated points are projected onto it by the M-step's
+    own rule (its safeguard keeps the objective monotone); with one factor (``cap_method="box"``)
+    the finish then works in coordinates where the bound is a box (``cap``,
+    :class:`panel.model.em._Coords`), with more there is no quasi-Newton finish."""
     rs = prob.rs
     logvar = prob.packer.log_variance_mask()
     n_lam = int(prob.packer.lam_free.sum())
