@@ -240,8 +240,11 @@ def cross_section_chart(table: pd.DataFrame, ppy: int, date, kind: str, as_of,
     """The premia at one date, highest at the top, with 90% intervals and P(premium > 0) beside.
 
     ``table``: ``CrossSection.table()`` columns ``asset, mean, std, prob_positive`` (per period;
-    a Bayesian run's ``q05, q95`` give the intervals).
+    a Bayesian run's ``q05, q95`` give the intervals; ``last_return`` marks an asset whose last
+    return precedes ``date``: :func:`panel.model.result.asset_labels`).
     """
+    from panel.model.result import asset_labels
+
     if len(table) == 0:
         raise ChartError(f"no asset has a premium estimate at {_day(date)}; pick a later date")
     frame = table.sort_values("mean", ascending=True, kind="stable")
@@ -253,7 +256,7 @@ def cross_section_chart(table: pd.DataFrame, ppy: int, date, kind: str, as_of,
               color=colour, lw=2.2, alpha=0.45)
     ax.plot(mean, y, "o", color=colour, ms=6)
     ax.axvline(0.0, color=_ZERO, lw=0.8)
-    ax.set_yticks(y, list(frame["asset"]), fontsize=8.5)
+    ax.set_yticks(y, asset_labels(frame, date), fontsize=8.5)
     ax.set_ylim(-0.7, len(frame) - 0.3)
     side = ax.secondary_yaxis("right")
     side.set_yticks(y, [f"{100 * p:.0f}%" for p in frame["prob_positive"]], fontsize=8)

@@ -238,3 +238,46 @@ def test_fit_limits_blas_threads_while_it_runs(monkeypatch):
     assert seen and all(s == {1} for s in seen)          # a BLAS was found, limited to one thread
     after = {i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"}
     assert after == before                               # and given back afterwards
+
+
+def test_an_asset_without_a_return_at_the_date_is_marked_with_its_last_one(cli_store):
+    # Cedar has no returns from 2017-07 to 2017-09 (cli_small_frame): inside that gap its premium is
+    # the model's prediction, and the tables say since when; every other asset, and Cedar after
+    # the gap, has a return at the date and is not marked.
+    out = cli_store.invoke("cross-section", 1, "--date", "2017-08-31")
+    assert out.exit_code == 0, out.output
+    text = " ".join(out.output.split())
+    assert "Cedar (to 2017-06-30)" in text and "'to DATE' marks an asset's last return" in text
+    assert "(to " not in text.replace("Cedar (to 2017-06-30)", "")
+    latest = cli_store.invoke("cross-section", 1)
+    assert "(to " not in latest.output and "'to DATE'" not in latest.output
+    data = json.loads(cli_store.invoke("cross-section", 1, "--date", "2017-08-31", "--json").output)
+    last = {r["asset"]: r["last_return"] for r in data["ranked"]}
+    assert last["Cedar"].startswith("2017-06-30")
+    assert all(v.startswith("2017-08-31") for a, v in last.items() if a != "Cedar")
+
+
+def test_the_fit_table_marks_assets_that_have_left(tmp_path):
+    # Two of five sleeves stop reporting before the last date (invented data): the fit's latest
+    # table names their last return; the library's cross-section carries the same dates.
+    from typer.testing import CliRunner
+
+    import panel
+    from panel.cli.app import app
+    from panel.model.result import asset_labels
+    from tests.cli_helpers import cli_small_frame, cli_write_csv
+
+    frame = cli_small_frame()
+    frame.iloc[50:, 0] = np.nan          # Alder leaves after 2019-02
+    frame.iloc[-1, 3] = np.nan           # Douglas's last return is late
+    csv = cli_write_csv(frame, tmp_path / "left.csv")
+    out = CliRunner().invoke(app, ["--store", str(tmp_path / "s.duckdb"), "fit", "--file", str(csv),
+                                   "--units", "percent", *CLI_FIT_OPTIONS], catch_exceptions=False)
+    assert out.exit_code == 0, out.output
+    text = " ".join(out.output.split())
+    assert "Alder (to 2019-02-28)" in text and "Douglas (to 2019-11-30)" in text
+    assert "'to DATE' marks" in text and text.count("(to ") == 2
+    cs = panel.fit(frame, panel.ModelSpec(std_errors="never")).cross_section(frame.index[-1], "filtered")
+    expected = frame.apply(lambda c: c.last_valid_index())
+    assert dict(zip(cs.assets, cs.last_return)) == expected.to_dict()
+    assert asset_labels(cs.table(), frame.index[-1]).count("Alder (to 2019-02-28)") == 1

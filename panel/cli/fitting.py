@@ -39,18 +39,24 @@ def _file_options_given(ctx: typer.Context) -> bool:
 
 def latest_rows(result, ppy: int) -> tuple[list, dict]:
     """Rows of the latest-premia table and the same numbers for JSON (per period)."""
+    from panel.model.result import asset_labels
+
     est = result.estimates
     last = result.dates[-1]
     year_back = result.dates[-1 - ppy] if len(result.dates) > ppy else None
     cs = result.cross_section(last, "filtered")
     prob = dict(zip(cs.assets, cs.prob_positive))
+    last_return = dict(zip(cs.assets, cs.last_return))
+    ranked = cs.table()
+    label = dict(zip(ranked["asset"], asset_labels(ranked, last)))
     now = est[est["date"] == last].set_index("asset")
     then = est[est["date"] == year_back].set_index("asset") if year_back is not None else None
     rows, records = [], []
     for asset in result.assets:
         r = now.loc[asset]
         earlier = then.loc[asset] if then is not None and asset in then.index else None
-        rows.append((asset, output.num(output.premium_pct(r.filtered_mean, ppy), 1),
+        rows.append((label.get(asset, asset),
+                     output.num(output.premium_pct(r.filtered_mean, ppy), 1),
                      output.row_band(r, "filtered", ppy), output.pct(prob.get(asset)),
                      "-" if earlier is None else output.num(output.premium_pct(earlier.filtered_mean, ppy), 1),
                      "-" if earlier is None else output.num(output.premium_pct(earlier.smoothed_mean, ppy), 1)))
@@ -59,13 +65,17 @@ def latest_rows(result, ppy: int) -> tuple[list, dict]:
         records.append({"asset": asset, "date": last, "filtered_mean": r.filtered_mean,
                         "filtered_std": r.filtered_std, "smoothed_mean": r.smoothed_mean,
                         "smoothed_std": r.smoothed_std, **quantiles, "prob_positive": prob.get(asset),
+                        "last_return": last_return.get(asset),
                         "year_earlier_date": year_back,
                         "year_earlier_filtered_mean": None if earlier is None else earlier.filtered_mean,
                         "year_earlier_smoothed_mean": None if earlier is None else earlier.smoothed_mean})
     return rows, {"date": last, "year_earlier": year_back, "rows": records}
 
 
-def print_latest(result, ppy: int, rows: list, year_back) -> None:
+def print_latest(result, ppy: int, rows: list, year_back, stale: bool = False) -> None:
+    """The latest-premia table; ``stale``: some asset's last return precedes the last date."""
+    from panel.model.result import STALE_NOTE
+
     last = output.day(result.dates[-1])
     then = output.day(year_back) if year_back is not None else "a year earlier"
     headers = ["asset", "premium", "90% band", "P(premium > 0)", f"filtered {then}", f"smoothed {then}"]
@@ -74,7 +84,7 @@ def print_latest(result, ppy: int, rows: list, year_back) -> None:
         f"A year earlier: filtered (real-time) vs smoothed (revised)",
         headers, rows,
         caption=output.BAND_NOTE + " The last two columns show how a year of data revised the "
-                "estimate made then."))
+                "estimate made then." + (" " + STALE_NOTE if stale else "")))
 
 
 def fit(
@@ -218,7 +228,9 @@ def fit(
         output.line(f"status: {result.status} - {result.message}", style=status_style)
         output.line(f"log-likelihood {result.loglik:,.2f}   AIC {result.aic:,.2f}   BIC {result.bic:,.2f}   "
                     f"parameters {result.n_params}   iterations {result.n_iter}   {result.elapsed:.1f} s")
-    print_latest(result, ppy, rows, latest["year_earlier"])
+    print_latest(result, ppy, rows, latest["year_earlier"],
+                 stale=any(r["last_return"] is not None and r["last_return"] < latest["date"]
+                           for r in latest["rows"]))
     output.caution()
 
 

@@ -371,3 +371,14 @@ def day(value) -> str:
     import pandas as pd
 
     return str(pd.Timestamp(value).date())
+
+
+
+def stale_caption(ranked, when, caption: str | None) -> str | None:
+    """``caption`` with :data:`panel.model.result.STALE_NOTE` added when an asset of ``ranked``
+    (``CrossSection.table()``) has its last return before ``when``."""
+    from panel.model.result import STALE_NOTE, stale
+
+    if not stale(ranked, when).any():
+        return caption
+    return STALE_NOTE if not caption else f"{caption} {STALE_NOTE}"

@@ -270,6 +270,7 @@ def cross_section(
 ) -> None:
     """The premia at one date, ranked, with 90% bands and P(premium > 0); --pairs adds the
     probability that one premium exceeds another (from their joint posterior)."""
+    from panel.model.result import asset_labels
     from panel.vintages.reproduce import run_inputs, stored_cross_section
 
     st = state(ctx)
@@ -294,20 +295,21 @@ def cross_section(
     if as_csv:
         output.emit_csv(matrix.reset_index(names="asset") if pairs else ranked)
         return
-    rows = [(i + 1, r.asset, output.num(output.premium_pct(r.mean, ppy), 2),
+    rows = [(i + 1, label, output.num(output.premium_pct(r.mean, ppy), 2),
              output.band(r.mean, r.std, ppy, quantiles=(getattr(r, "q05", None), getattr(r, "q95", None))
                          if cs.mixture is not None else None),
              output.num(output.premium_pct(r.std, ppy), 2), output.pct(r.prob_positive))
-            for i, r in enumerate(ranked.itertuples(index=False))]
+            for i, (r, label) in enumerate(zip(ranked.itertuples(index=False),
+                                               asset_labels(ranked, cs.date)))]
     output.show(output.table(f"Cross-section at {output.day(cs.date)}: {kind.value} premia "
                              f"({'real-time' if kind == Kind.filtered else 'revised'}), annualised % (x{ppy}); "
                              f"run {run_id}, as of {output.day(as_of)}",
                              ["rank", "asset", "premium", "90% band", "std", "P(premium > 0)"], rows,
-                             right_from=2,
-                             caption=None if cs.mixture is None else
-                             "Bayesian run: premium = posterior mean, band = posterior 5% and 95% "
-                             "quantiles, probabilities from the posterior draws (parameter "
-                             "uncertainty included)."))
+                             right_from=2, caption=output.stale_caption(
+                                 ranked, cs.date, None if cs.mixture is None else
+                                 "Bayesian run: premium = posterior mean, band = posterior 5% and "
+                                 "95% quantiles, probabilities from the posterior draws (parameter "
+                                 "uncertainty included).")))
     if pairs:
         labels = list(matrix.index)
         rows = [(a, *("" if a == b else output.pct(matrix.loc[a, b]) for b in labels)) for a in labels]

@@ -28,6 +28,9 @@ class CrossSection:
     are the mixture's moments and ``mixture`` holds its probabilities and quantiles
     ``(prob_positive (n,), prob_greater (n, n), q05 (n,), q95 (n,))``: the properties then return
     those instead of the normal ones, and :meth:`table` adds ``q05`` and ``q95``.
+    ``last_return`` (n,): each asset's last return on or before ``date``; where it is earlier (an
+    asset that has left, or whose latest return is late or missing) its premium at ``date`` is the
+    model's prediction from then, not an estimate from a return at that date.
     """
 
     date: pd.Timestamp
@@ -36,6 +39,7 @@ class CrossSection:
     mean: np.ndarray
     cov: np.ndarray
     mixture: tuple | None = None
+    last_return: tuple = ()
 
     def __repr__(self) -> str:
         return (f"<CrossSection {self.kind} at {self.date.date()}, {len(self.assets)} assets; "
@@ -64,13 +68,36 @@ class CrossSection:
         return pd.DataFrame(out, index=list(self.assets), columns=list(self.assets))
 
     def table(self) -> pd.DataFrame:
-        """One row per asset: mean, std, P(mu > 0) (a mixture: and its 5% and 95% quantiles),
-        ranked by mean (highest first)."""
+        """One row per asset: mean, std, P(mu > 0) (a mixture: and its 5% and 95% quantiles), the
+        date of its last return on or before the cross-section's, ranked by mean (highest first)."""
         frame = pd.DataFrame({"asset": self.assets, "mean": self.mean, "std": self.std,
                               "prob_positive": self.prob_positive})
         if self.mixture is not None:
             frame["q05"], frame["q95"] = self.mixture[2], self.mixture[3]
+        if self.last_return:
+            frame["last_return"] = pd.DatetimeIndex(self.last_return)
         return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
+
+
+#: Caption of a premia table in which :func:`asset_labels` marked an asset.
+STALE_NOTE = ("'to DATE' marks an asset's last return before the table's date (it has left, or its "
+              "latest returns are late or missing): its premium since then is the model's "
+              "prediction, not an estimate from newer returns.")
+
+
+def stale(ranked: pd.DataFrame, when) -> np.ndarray:
+    """Per row of ``ranked`` (:meth:`CrossSection.table`): its last return precedes ``when``."""
+    if "last_return" not in ranked:
+        return np.zeros(len(ranked), bool)
+    return (ranked["last_return"] < pd.Timestamp(when)).to_numpy()
+
+
+def asset_labels(ranked: pd.DataFrame, when) -> list[str]:
+    """The assets of ``ranked`` (:meth:`CrossSection.table`) as a premia table at ``when`` names
+    them: "(to DATE)" after each whose last return precedes ``when``."""
+    marks = stale(ranked, when)
+    return [f"{a} (to {pd.Timestamp(last).date()})" if m else a
+            for a, last, m in zip(ranked["asset"], ranked.get("last_return", ranked["asset"]), marks)]
 
 
 def cross_section_at(panel: Panel, spec: ModelSpec, params, date, kind: str = "smoothed") -> CrossSection:
@@ -89,8 +116,10 @@ def cross_section_at(panel: Panel, spec: ModelSpec, params, date, kind: str = "s
         mean, cov, active, mixture = mixture_at(panel, spec, params, t, kind)
     else:
         (mean, cov, active), mixture = covariance_at(panel, spec, params, t, kind), None
+    seen = panel.values.iloc[: t + 1].notna().to_numpy()[:, active]
+    last = panel.dates[t - np.argmax(seen[::-1], axis=0)]     # active: seen at or before t
     return CrossSection(date=panel.dates[t], kind=kind, assets=tuple(np.array(panel.assets)[active]),
-                        mean=mean, cov=cov, mixture=mixture)
+                        mean=mean, cov=cov, mixture=mixture, last_return=tuple(last))
 
 
 @dataclass(frozen=True, eq=False, repr=False)

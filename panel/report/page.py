@@ -170,19 +170,22 @@ def _fit(c: ReportContent) -> str:
 
 
 def _cross_section(c: ReportContent) -> str:
+    from panel.model.result import STALE_NOTE, asset_labels, stale
+
     cs = c.cross_section
     ranked = cs.table()
     rows = []
-    for i, r in enumerate(ranked.itertuples(index=False)):
+    for i, (r, label) in enumerate(zip(ranked.itertuples(index=False), asset_labels(ranked, cs.date))):
         m, s = r.mean * c.ppy, r.std * c.ppy
         lo, hi = plots.band_edges(r.mean, r.std, c.ppy, getattr(r, "q05", None), getattr(r, "q95", None))
-        rows.append((i + 1, r.asset, _pct(m), f"[{_pct(lo)}, {_pct(hi)}]", _pct(s),
+        rows.append((i + 1, label, _pct(m), f"[{_pct(lo)}, {_pct(hi)}]", _pct(s),
                      f"{100 * r.prob_positive:.0f}%"))
     basis = ("the posterior draws (a Bayesian run: bands are posterior 5% and 95% quantiles)"
              if cs.mixture is not None else "the normal posterior")
     table = _table(["rank", "asset", "premium", "90% band", "std", "P(premium > 0)"], rows, numeric_from=2,
                    caption=f"% a year (x{c.ppy}); at the as-of date the filtered (real-time) and smoothed "
-                           f"(revised) estimates coincide. P(premium > 0) from {basis}.")
+                           f"(revised) estimates coincide. P(premium > 0) from {basis}."
+                           + (f" {STALE_NOTE}" if stale(ranked, cs.date).any() else ""))
     fig = plots.cross_section_chart(ranked, c.ppy, cs.date, "smoothed", cs.date,
                                     title=plots.heading("Cross-section", c.dataset, c.run.get("label")))
     body = _figure(fig, f"Premia at {_day(cs.date)}, dot = mean, bar = 90% band.", "cross-section chart") + table
