@@ -72,10 +72,10 @@ class CrossSection:
         date of its last return on or before the cross-section's, ranked by mean (highest first)."""
         frame = pd.DataFrame({"asset": self.assets, "mean": self.mean, "std": self.std,
                               "prob_positive": self.prob_positive})
-        if self.mixture is not None:
-            frame["q05"], frame["q95"] = self.mixture[2], self.mixture[3]
         if self.last_return:
             frame["last_return"] = pd.DatetimeIndex(self.last_return)
+        if self.mixture is not None:
+            frame["q05"], frame["q95"] = self.mixture[2], self.mixture[3]
         return frame.sort_values("mean", ascending=False, kind="stable").reset_index(drop=True)
 
 
