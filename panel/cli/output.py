@@ -373,7 +373,6 @@ def day(value) -> str:
     return str(pd.Timestamp(value).date())
 
 
-
 def stale_caption(ranked, when, caption: str | None) -> str | None:
     """``caption`` with :data:`panel.model.result.STALE_NOTE` added when an asset of ``ranked``
     (``CrossSection.table()``) has its last return before ``when``."""
