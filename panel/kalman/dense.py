@@ -76,7 +76,7 @@ def dense_smoother(Y, Sigma, H, scale2=None, *, init=None, Lambda=None, cov_at=(
         :data:`panel.kalman.paths.KEEP_ALL_BYTES`.
     terms : with ``want_estep`` (and no ``Lambda``), the premium innovations' moment groups also
         carry the disturbance smoother's score terms (:class:`panel.kalman.types.MomentGroup`'s
-        ``score``; about 1.3-1.7x the E-step's CPU time).
+        ``score``; about 1.3-1.8x the E-step's CPU time).
     """
     Y = np.asarray(Y, dtype=float)
     T, N = Y.shape

@@ -225,7 +225,7 @@ class ModelSpec:
         factor 2-5.  Measured on 18 fits (12 Fama-French portfolio sets and specs, 6 simulated
         panels): 7,807 E-steps against 4,295 (median 297 against 229), three fits stalled against
         none, and every fit ended at the same or a lower optimum (by up to 0.018); on five ragged
-        Fama-French panels 2,377 against 1,213.  The terms cost 1.01-1.7x an E-step's CPU, by path.
+        Fama-French panels 2,377 against 1,213.  The terms cost 1.01-1.8x an E-step's CPU, by path.
         :meth:`from_dict` reads settings without the key as "moments".
     max_iter : int
         Maximum EM iterations (E-steps; with ``finish`` on the filled copy, its E-steps and the
