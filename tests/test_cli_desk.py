@@ -15,6 +15,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from tests.backends import BOTH
 from tests.cli_helpers import CLI_FIT_OPTIONS
 
 PROFILES = """
@@ -281,3 +282,20 @@ def test_the_fit_table_marks_assets_that_have_left(tmp_path):
     expected = frame.apply(lambda c: c.last_valid_index())
     assert dict(zip(cs.assets, cs.last_return)) == expected.to_dict()
     assert asset_labels(cs.table(), frame.index[-1]).count("Alder (to 2019-02-28)") == 1
+
+
+@BOTH
+def test_estimates_mark_the_dates_without_a_return(cli_store):
+    # Cedar's three-month gap (2017-07 to 2017-09, cli_small_frame) is where the estimates table's
+    # premia are predictions; Elm's diffuse entry (2016-01, its first return) is not such a date.
+    out = cli_store.invoke("estimates", 1, "--asset", "Cedar", "--asset", "Elm", "--last", "0")
+    assert out.exit_code == 0, out.output
+    marked = [line.split()[0] + " " + line.split()[1] for line in out.output.splitlines()
+              if "(no return)" in line and line[:4].isdigit()]
+    assert marked == ["2017-07-31 Cedar", "2017-08-31 Cedar", "2017-09-30 Cedar"]
+    assert "'(no return)': no return of the asset at that date" in " ".join(out.output.split())
+    recent = cli_store.invoke("estimates", 1, "--asset", "Cedar")       # the last 12 dates
+    assert "(no return)" not in recent.output
+    # machine outputs keep their columns
+    rows = json.loads(cli_store.invoke("estimates", 1, "--asset", "Cedar", "--json").output)["rows"]
+    assert "has_return" not in rows[0]

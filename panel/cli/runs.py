@@ -187,6 +187,11 @@ def _run_ppy(run: dict, layout: dict) -> int:
 TABLE_DATES = 12
 
 
+#: Caption of an estimates table with a date on which an asset has no return.
+NO_RETURN_NOTE = ("'(no return)': no return of the asset at that date (it has left, or the return is "
+                  "late or missing); its premium there is the model's prediction.")
+
+
 def estimates(
     ctx: typer.Context,
     run_id: RunArg,
@@ -219,10 +224,12 @@ def estimates(
         unknown = [a for a in asset or () if a not in layout["assets"]]
         if unknown:
             fail(f"run {run_id} has no asset {unknown[0]!r}; its assets: {', '.join(layout['assets'])}")
-        est, n_dates = run_estimates(store, run_id, assets=asset or None, last=keep, columns=columns)
+        est, n_dates = run_estimates(store, run_id, assets=asset or None, last=keep, columns=columns,
+                                     with_return=not machine)
     ppy = _run_ppy(run, layout)
     order = {a: i for i, a in enumerate(asset or layout["assets"])}
     est = est.assign(_order=est["asset"].map(order)).sort_values(["date", "_order"], kind="stable")
+    seen = est["has_return"].astype(bool).to_numpy() if not machine else None
     est = est[columns].reset_index(drop=True)
     shown = est["date"].nunique()
     cut = f"the last {shown} of {n_dates} dates" if shown < n_dates else None
@@ -240,8 +247,8 @@ def estimates(
     for k in kinds:
         headers += [f"{k}, % a year", "90% band"]
     rows = []
-    for r in est.itertuples(index=False):
-        cells = [output.day(r.date), r.asset]
+    for r, has_return in zip(est.itertuples(index=False), seen):
+        cells = [output.day(r.date), r.asset if has_return else f"{r.asset} (no return)"]
         for k in kinds:
             cells += [output.num(output.premium_pct(getattr(r, f"{k}_mean"), ppy), 2),
                       output.row_band(r, k, ppy)]
@@ -251,6 +258,7 @@ def estimates(
                              f"{output.day(run['as_of'])}", headers, rows, right_from=2,
                              caption=" ".join(t for t in (
                                  None if cut is None else f"{cut}; --last N for more, 0 for all.",
+                                 None if seen.all() else NO_RETURN_NOTE,
                                  output.BAND_NOTE if is_bayes(run) else None) if t) or None,
                              drop=[5, 3]))
     output.caution()

@@ -8,7 +8,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
-from sqlalchemy import String, func, select
+from sqlalchemy import String, and_, func, select
 
 from panel.data import Panel, canonical_hash
 from panel.files import FORMULA_STARTS, OutputError, check_target, formula_safe_frame, write_atomically
@@ -166,19 +166,26 @@ def _without_empty_bayes(frame: pd.DataFrame, kind: str) -> pd.DataFrame:
 
 
 def run_estimates(store: Store, run_id: int, assets=None, last: int | None = None,
-                  columns=None) -> tuple[pd.DataFrame, int]:
+                  columns=None, with_return: bool = False) -> tuple[pd.DataFrame, int]:
     """``(rows, n_dates)``: a run's estimates (``columns``, default all; sorted by date and asset)
     of ``assets`` (default all) at its last ``last`` dates (None or 0: all), selected in the
-    database; ``n_dates`` counts the dates of those assets before the cut."""
-    key = get_run(store, run_id)["id"]
+    database; ``n_dates`` counts the dates of those assets before the cut.  ``with_return`` adds
+    ``has_return``: whether the run's dataset has the asset's return at that date (where it has
+    none, the premium is the model's prediction)."""
+    run = get_run(store, run_id)
     est = schema.estimates
-    where = [est.c.run_id == key]
+    where = [est.c.run_id == run["id"]]
     if assets is not None:
         where.append(est.c.asset.in_(list(assets)))
     names = [c for c in est.columns if c.name != "run_id" and (columns is None or c.name in columns)]
     with store.engine.connect() as conn:
         n_dates = conn.execute(select(func.count(est.c.date.distinct())).where(*where)).scalar_one()
         statement = select(*names).where(*where)
+        if with_return:
+            dv = schema.dataset_values
+            statement = statement.add_columns(dv.c.value.is_not(None).label("has_return")).select_from(
+                est.outerjoin(dv, and_(dv.c.hash == run["dataset_hash"], dv.c.date == est.c.date,
+                                       dv.c.asset == est.c.asset)))
         if last:
             recent = (select(est.c.date).where(*where).group_by(est.c.date)
                       .order_by(est.c.date.desc()).limit(int(last)))
