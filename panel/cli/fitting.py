@@ -37,9 +37,10 @@ def _file_options_given(ctx: typer.Context) -> bool:
                for p in _FILE_PARAMS)
 
 
-def latest_rows(result, ppy: int) -> tuple[list, dict]:
-    """Rows of the latest-premia table and the same numbers for JSON (per period)."""
-    from panel.model.result import asset_labels
+def latest_rows(result, ppy: int) -> tuple[list, dict, bool]:
+    """Rows of the latest-premia table, the same numbers for JSON (per period), and whether an
+    asset's last return precedes the last date (its label says so)."""
+    from panel.model.result import asset_labels, stale
 
     est = result.estimates
     last = result.dates[-1]
@@ -69,7 +70,7 @@ def latest_rows(result, ppy: int) -> tuple[list, dict]:
                         "year_earlier_date": year_back,
                         "year_earlier_filtered_mean": None if earlier is None else earlier.filtered_mean,
                         "year_earlier_smoothed_mean": None if earlier is None else earlier.smoothed_mean})
-    return rows, {"date": last, "year_earlier": year_back, "rows": records}
+    return rows, {"date": last, "year_earlier": year_back, "rows": records}, bool(stale(ranked, last).any())
 
 
 def print_latest(result, ppy: int, rows: list, year_back, stale: bool = False) -> None:
@@ -197,7 +198,7 @@ def fit(
     if save_draws is not None:
         result.posterior.to_inference_data().to_netcdf(str(save_draws))
     ppy = result.periods_per_year
-    rows, latest = latest_rows(result, ppy)
+    rows, latest, marked = latest_rows(result, ppy)
     summary = {"run_id": run_id, "dataset": dataset, "dataset_hash": digest, "as_of": result.dates[-1],
                "status": result.status, "converged": result.converged, "message": result.message,
                "loglik": result.loglik, "aic": result.aic, "bic": result.bic, "n_params": result.n_params,
@@ -228,9 +229,7 @@ def fit(
         output.line(f"status: {result.status} - {result.message}", style=status_style)
         output.line(f"log-likelihood {result.loglik:,.2f}   AIC {result.aic:,.2f}   BIC {result.bic:,.2f}   "
                     f"parameters {result.n_params}   iterations {result.n_iter}   {result.elapsed:.1f} s")
-    print_latest(result, ppy, rows, latest["year_earlier"],
-                 stale=any(r["last_return"] is not None and r["last_return"] < latest["date"]
-                           for r in latest["rows"]))
+    print_latest(result, ppy, rows, latest["year_earlier"], stale=marked)
     output.caution()
 
 

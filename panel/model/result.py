@@ -95,9 +95,10 @@ def stale(ranked: pd.DataFrame, when) -> np.ndarray:
 def asset_labels(ranked: pd.DataFrame, when) -> list[str]:
     """The assets of ``ranked`` (:meth:`CrossSection.table`) as a premia table at ``when`` names
     them: "(to DATE)" after each whose last return precedes ``when``."""
-    marks = stale(ranked, when)
+    if "last_return" not in ranked:
+        return list(ranked["asset"])
     return [f"{a} (to {pd.Timestamp(last).date()})" if m else a
-            for a, last, m in zip(ranked["asset"], ranked.get("last_return", ranked["asset"]), marks)]
+            for a, last, m in zip(ranked["asset"], ranked["last_return"], stale(ranked, when))]
 
 
 def cross_section_at(panel: Panel, spec: ModelSpec, params, date, kind: str = "smoothed") -> CrossSection:
