@@ -208,6 +208,8 @@ def test_a_direct_fit_that_the_filled_route_would_speed_up_says_so():
     cells = int(fillable(frame.to_numpy()).sum())
     direct = panel.fit(data, ModelSpec(std_errors="never", max_iter=5))
     assert f"; {cells} gap cells fitted on the panel itself: finish='filled'" in direct.message
+    cells, speedup = surrogate.missed_gaps(Problem(data, ModelSpec()))
+    assert speedup >= surrogate.MIN_SPEEDUP and f"estimated {speedup:.0f}x cheaper" in direct.message
     filled = panel.fit(data, ModelSpec(std_errors="never", max_iter=5, finish="filled"))
     assert "fitted on the panel itself" not in filled.message
     exits = panel.fit(panel.Panel.from_frame(simulate(60, 300, "exits")[0]),
@@ -216,6 +218,26 @@ def test_a_direct_fit_that_the_filled_route_would_speed_up_says_so():
     small = panel.fit(panel.Panel.from_frame(simulate(10, 120, "gaps_2")[0]),
                       ModelSpec(std_errors="never", max_iter=5))
     assert "gap cells" not in small.message                   # its exact E-step is quick anyway
+
+
+def test_the_hint_names_a_smaller_speedup_on_a_panel_still_ragged_when_filled():
+    # single late entrants keep the filled copy on the segment path: its E-step is a few times
+    # cheaper, not tens (simulated; the factor is the paths' own cost estimate)
+    frame, _, _ = simulate(60, 300, "balanced")
+    Y = frame.to_numpy().copy()
+    for i in range(0, 60, 10):
+        Y[: 10 + (i * 300) // 120, i] = np.nan
+    Y[np.random.default_rng(5).random(Y.shape) < 0.002] = np.nan
+    data = panel.Panel.from_frame(frame.__class__(Y, index=frame.index, columns=frame.columns))
+    prob = Problem(data, ModelSpec())
+    cells, speedup = surrogate.missed_gaps(prob)
+    assert cells == int(fillable(Y).sum()) > 0
+    assert surrogate.HINT_SPEEDUP <= speedup < surrogate.MIN_SPEEDUP
+    assert not surrogate.route(prob, "auto")                   # "auto" keeps its 10x rule
+    direct = panel.fit(data, ModelSpec(std_errors="never", max_iter=2))
+    assert direct.message.endswith(f"; {cells} gap cells fitted on the panel itself: finish='filled' "
+                                   f"(--gaps filled) fits on a gap-filled copy whose E-step is "
+                                   f"estimated {speedup:.1f}x cheaper")
 
 
 def test_settings_stored_without_finish_fit_on_the_panel_itself():
