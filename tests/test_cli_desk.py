@@ -258,6 +258,20 @@ def test_an_asset_without_a_return_at_the_date_is_marked_with_its_last_one(cli_s
     assert all(v.startswith("2017-08-31") for a, v in last.items() if a != "Cedar")
 
 
+def test_a_cross_section_before_an_entry_names_the_assets_not_yet_in_the_panel(cli_store):
+    # Elm's first return is 2016-01 (cli_small_frame): at 2015-12-31 it has none, so it is not
+    # ranked and the table says so; from its entry on it is ranked and nothing is said.
+    out = cli_store.invoke("cross-section", 1, "--date", "2015-12-31")
+    assert out.exit_code == 0, out.output
+    text = " ".join(out.output.split())
+    assert "Not ranked: 1 of the run's assets have no return yet by 2015-12-31 (Elm)." in text
+    assert " Elm " not in text.split("Not ranked")[0]
+    data = json.loads(cli_store.invoke("cross-section", 1, "--date", "2015-12-31", "--json").output)
+    assert data["not_entered"] == ["Elm"] and "Elm" not in data["assets"]
+    entered = cli_store.invoke("cross-section", 1, "--date", "2016-01-31")
+    assert "Not ranked" not in entered.output and "Elm" in entered.output
+
+
 def test_the_fit_table_marks_assets_that_have_left(tmp_path):
     # Two of five sleeves stop reporting before the last date (invented data): the fit's latest
     # table names their last return; the library's cross-section carries the same dates.

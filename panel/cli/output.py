@@ -373,11 +373,22 @@ def day(value) -> str:
     return str(pd.Timestamp(value).date())
 
 
-def stale_caption(ranked, when, caption: str | None) -> str | None:
+#: Assets named in the cross-section's note on those not yet in the panel.
+LATER_SHOWN = 6
+
+
+def stale_caption(ranked, when, caption: str | None, later=()) -> str | None:
     """``caption`` with :data:`panel.model.result.STALE_NOTE` added when an asset of ``ranked``
-    (``CrossSection.table()``) has its last return before ``when``."""
+    (``CrossSection.table()``) has its last return before ``when``, and a sentence naming
+    ``later``: the run's assets with no return yet on or before ``when`` (not in the table)."""
     from panel.model.result import STALE_NOTE, stale
 
-    if not stale(ranked, when).any():
-        return caption
-    return STALE_NOTE if not caption else f"{caption} {STALE_NOTE}"
+    parts = [caption] if caption else []
+    if stale(ranked, when).any():
+        parts.append(STALE_NOTE)
+    if len(later):
+        shown = ", ".join(later[:LATER_SHOWN]) + (f" and {len(later) - LATER_SHOWN} more"
+                                                  if len(later) > LATER_SHOWN else "")
+        parts.append(f"Not ranked: {len(later)} of the run's assets have no return yet by "
+                     f"{day(when)} ({shown}).")
+    return " ".join(parts) or None

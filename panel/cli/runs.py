@@ -291,12 +291,13 @@ def cross_section(
         cs, inputs = stored_cross_section(store, run_id, when, kind.value)
     as_of = inputs.panel.dates[-1]
     ranked = cs.table()
+    later = [a for a in inputs.panel.assets if a not in set(cs.assets)]     # no return yet
     matrix = cs.prob_greater.loc[list(ranked["asset"]), list(ranked["asset"])]
     ppy = _ppy(inputs)
     if as_json:
         output.emit_json({"run_id": run_id, "date": cs.date, "kind": kind.value, "as_of": as_of,
                           "periods_per_year": ppy, "units": output.MACHINE_UNITS, "ranked": ranked,
-                          "assets": list(cs.assets), "mean": cs.mean, "cov": cs.cov,
+                          "assets": list(cs.assets), "not_entered": later, "mean": cs.mean, "cov": cs.cov,
                           "prob_greater": {"assets": list(matrix.index), "matrix": matrix.to_numpy()},
                           "caution": output.CAUTION})
         return
@@ -317,7 +318,7 @@ def cross_section(
                                  ranked, cs.date, None if cs.mixture is None else
                                  "Bayesian run: premium = posterior mean, band = posterior 5% and "
                                  "95% quantiles, probabilities from the posterior draws (parameter "
-                                 "uncertainty included).")))
+                                 "uncertainty included).", later)))
     if pairs:
         labels = list(matrix.index)
         rows = [(a, *("" if a == b else output.pct(matrix.loc[a, b]) for b in labels)) for a in labels]
