@@ -89,3 +89,17 @@ def test_profile_sets_bayes_options_and_backfill_takes_them(cli_store):
     bad.write_text('[profiles.p]\nbayes = "yes"\n')
     refused = cli_store.invoke("fit", "--data", "trees", "--profile", "p", "--config", bad)
     assert refused.exit_code == 1 and "is not true or false" in refused.output
+
+
+def test_arviz_loads_without_printing_to_the_users_terminal(tmp_path):
+    # ArviZ 0.23 prints a FutureWarning about its coming refactor on its first import of the day
+    # (a stamp in the user's cache folder, here an empty one); a Bayesian run's only output on
+    # stderr must be ours
+    import os
+    import subprocess
+    import sys
+
+    code = "from panel.bayes.diagnostics import arviz; print(arviz().__name__)"
+    out = subprocess.run([sys.executable, "-W", "default", "-c", code], capture_output=True,
+                         text=True, check=True, env={**os.environ, "XDG_CACHE_HOME": str(tmp_path)})
+    assert out.stdout.strip() == "arviz" and out.stderr == ""

@@ -86,11 +86,19 @@ ANNUAL_UNITS = {"premium_var": "premium vol, decimal a year (q = V^2/ppy^3)",
                 "premium": "premium, decimal a year"}
 
 
+def arviz():
+    """The ``arviz`` module, imported without the notice about its coming refactor that ArviZ
+    0.23 prints (a ``FutureWarning``) on import: our use of it (datasets, R-hat, ESS) is stable."""
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=FutureWarning, module="arviz")
+        import arviz as az
+    return az
+
+
 def convergence(stack: np.ndarray):
     """(rhat, ess_bulk, ess_tail) (P,) of a (chains, draws, P) stack by ArviZ; NaN for a quantity
     that does not move (a fixed parameter)."""
-    import arviz as az
-
+    az = arviz()
     P = stack.shape[-1]
     moving = stack.reshape(-1, P).std(axis=0) > 0
     out = [np.full(P, np.nan) for _ in range(3)]

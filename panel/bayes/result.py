@@ -134,7 +134,9 @@ class BayesResult:
         factor; the priors and settings as JSON attributes).  ``.to_netcdf(path)`` writes it."""
         import json
 
-        import arviz as az
+        from panel.bayes.diagnostics import arviz
+
+        az = arviz()
 
         assets = list(self.assets)
         dims = {"Lambda": ["asset", "factor"], "q": ["asset"], "psi": ["asset"],
