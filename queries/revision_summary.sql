@@ -4,8 +4,10 @@
 --   smoothed mean minus the first covering vintage's filtered mean (first release); then per asset
 --   the number of such dates, their range, and the mean absolute, mean and largest absolute
 --   revision.  Each asset's first :skip dates (a burn-in: the first estimates after an asset enters
---   rest on few returns and move most) are left out.  Failed runs are ignored.  Per-period
---   decimal units.
+--   rest on few returns and move most) are left out, and so are the dates after an asset's last
+--   return in the dataset (it has left, or its latest returns are not yet published): its premium
+--   there is the model's prediction from that return, the same at every later date, so it would
+--   only repeat one revision.  Failed runs are ignored.  Per-period decimal units.
 -- param dataset: dataset hash (run_query also accepts a dataset name or hash prefix)
 -- param key: backfill key of the vintages (runs.backfill_key), or NULL for all runs of the dataset
 -- param skip: dates left out at the start of each asset's estimates (0 or NULL: none)
@@ -27,6 +29,12 @@ paths AS (
     JOIN estimates e ON e.run_id = v.run_id
     WHERE v.newest = 1
 ),
+last_return AS (
+    SELECT asset, MAX(date) AS last_date
+    FROM dataset_values
+    WHERE hash = :dataset
+    GROUP BY asset
+),
 per_date AS (
     SELECT asset, date,
            MAX(CASE WHEN first_rank = 1 THEN filtered_mean END) AS first_release,
@@ -36,11 +44,13 @@ per_date AS (
     FROM paths
     GROUP BY asset, date
 )
-SELECT asset, COUNT(*) AS n_dates, MIN(date) AS first_date, MAX(date) AS last_date,
-       AVG(ABS(latest - first_release)) AS mean_abs_revision,
-       AVG(latest - first_release) AS mean_revision,
-       MAX(ABS(latest - first_release)) AS max_abs_revision
-FROM per_date
-WHERE n_vintages >= 2 AND period > COALESCE(CAST(:skip AS INTEGER), 0)
-GROUP BY asset
-ORDER BY asset
+SELECT p.asset, COUNT(*) AS n_dates, MIN(p.date) AS first_date, MAX(p.date) AS last_date,
+       AVG(ABS(p.latest - p.first_release)) AS mean_abs_revision,
+       AVG(p.latest - p.first_release) AS mean_revision,
+       MAX(ABS(p.latest - p.first_release)) AS max_abs_revision
+FROM per_date p
+JOIN last_return l ON l.asset = p.asset
+WHERE p.n_vintages >= 2 AND p.period > COALESCE(CAST(:skip AS INTEGER), 0)
+  AND p.date <= l.last_date
+GROUP BY p.asset
+ORDER BY p.asset

@@ -18,7 +18,8 @@ from scipy import stats
 from panel.vintages.backfill import BackfillError, backfill, find_backfill, list_backfills
 from panel.vintages.evaluation import (clark_west, clark_west_terms, default_lags, evaluate_backfill, evaluate_forecasts,
                               oos_r2, revisions)
-from panel.store import list_runs, run_tables
+from panel.data import Panel
+from panel.store import list_runs, run_tables, write_dataset
 from tests.backfill_fixtures import NAME, SPEC, sleeves_store  # noqa: F401
 from tests.backends import BOTH
 
@@ -103,8 +104,8 @@ def test_default_newey_west_lags_and_bad_options():
 # ---------------------------------------------------------------------------------------------
 # against the store
 
-def _vintages(store):
-    runs = list_runs(store, NAME).sort_values("as_of")
+def _vintages(store, name=NAME):
+    runs = list_runs(store, name).sort_values("as_of")
     return [(pd.Timestamp(r.as_of), int(r.id), run_tables(store, int(r.id))["estimates"]) for r in runs.itertuples()]
 
 
@@ -166,6 +167,32 @@ def test_revisions_follow_one_premium_from_its_first_release_to_the_latest_vinta
         assert row["n_dates"] == len(revs) == len(panel.dates) - 2    # up to 2023-10-31: in >= 2 vintages
         assert row["mean_abs_revision"] == pytest.approx(np.mean(np.abs(revs)), rel=1e-12)
         assert row["max_abs_revision"] == pytest.approx(np.max(np.abs(revs)), rel=1e-12)
+
+
+@BOTH
+def test_the_revision_summary_stops_at_an_assets_last_return(sleeves_store):
+    # lighthouse_gold leaves after 2023-08-31: every vintage's premium for it after that is the
+    # prediction from that return, so the summary stops there; the others run to 2023-10-31
+    store, panel = sleeves_store
+    frame = panel.values.copy()
+    frame.loc[frame.index > "2023-08-31", "lighthouse_gold"] = np.nan
+    write_dataset(store, Panel.from_frame(frame, "M"), "quillmoor_exit")
+    backfill(store, "quillmoor_exit", SPEC, chain=3, **CUTS)
+    found = revisions(store, find_backfill(store, "quillmoor_exit"), "tidal_rates", "2023-08-31")
+    summary = found.summary.set_index("asset")
+    vintages = _vintages(store, "quillmoor_exit")
+    for asset in panel.assets:
+        last = pd.Timestamp("2023-08-31" if asset == "lighthouse_gold" else "2023-10-31")
+        days = panel.dates[panel.dates <= last]
+        pick = lambda e, day: e[(e["asset"] == asset) & (pd.to_datetime(e["date"]) == day)].iloc[0]  # noqa: E731
+        revs = [pick([e for a, _, e in vintages if a >= day][-1], day)["smoothed_mean"]
+                - pick([e for a, _, e in vintages if a >= day][0], day)["filtered_mean"] for day in days]
+        row = summary.loc[asset]
+        assert row["n_dates"] == len(days) and pd.Timestamp(row["last_date"]) == last
+        assert row["mean_abs_revision"] == pytest.approx(np.mean(np.abs(revs)), rel=1e-12)
+    # the estimates themselves run on: the run of 2023-11-30 has lighthouse_gold's premium there
+    newest = vintages[-1][2]
+    assert ((newest["asset"] == "lighthouse_gold") & (pd.to_datetime(newest["date"]) == "2023-11-30")).any()
 
 
 def test_a_backfill_is_found_by_settings_by_key_or_as_the_only_one(sleeves_store):

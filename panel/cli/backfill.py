@@ -310,7 +310,7 @@ def revisions(
     output.show(output.table(
         f"Revisions per asset, annualised % (x{ppy}): newest smoothed minus first release",
         ["asset", "dates", "range", "mean |revision|", "mean revision", "largest |revision|"], summary,
-        caption="Over the dates that at least two vintages cover" + (
+        caption="Over the dates that at least two vintages cover, up to each asset's last return" + (
             f", after each asset's first {found.skip} dates (--skip)." if found.skip else
             "; each asset's first dates included (--skip N leaves out a burn-in).")))
     output.caution()
