@@ -118,6 +118,10 @@ class Panel:
     def dates(self) -> pd.DatetimeIndex:
         return self.values.index
 
+    def last_returns(self) -> pd.Series:
+        """Each asset's last date with a return (index: the assets)."""
+        return self.values.apply(pd.Series.last_valid_index)
+
     def cut(self, as_of) -> "Panel":
         """The panel with data up to and including ``as_of`` (a vintage's cut-off); assets with no
         observation by then are dropped."""

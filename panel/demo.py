@@ -258,7 +258,8 @@ def run_demo(store, folder, *, seed: int = SEED, vintages: int = 4,
     files = []
     fig = plots.premium_paths(final.estimates, PATH_SLEEVES, ppy, as_of=final.dates[-1],
                               title=f"{FUND}: premium paths", reference=scn.premia,
-                              reference_label="true premium (simulated)")
+                              reference_label="true premium (simulated)",
+                              last_return=final.panel.last_returns())
     files.append(plots.save(fig, folder / "premium_paths.png"))
     cs = final.cross_section(final.dates[-1], "filtered")
     fig = plots.cross_section_chart(cs.table(), ppy, date=cs.date, kind="filtered",

@@ -168,14 +168,17 @@ def _grid_shape(n: int) -> int:
 @_plain_text
 def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str | None = None,
                   reference: pd.DataFrame | None = None, reference_label: str = "true premium",
-                  shared_scale: bool = False) -> Figure:
+                  shared_scale: bool = False, last_return=None) -> Figure:
     """Filtered and smoothed premium paths of ``assets`` with 90% bands, one small panel per asset.
 
     ``estimates``: the ``PanelFit.estimates`` columns (per-period decimals).  Panels sit in a grid
     (1 column for one asset, 2 up to 4, 3 up to 12, then 4) on a shared time axis.  Each panel's
     vertical range follows its bands after the asset's first year; ``shared_scale`` puts every panel
     on one range (comparable heights).  ``reference``: optional dates x assets premia (per period)
-    drawn dashed, e.g. the true premia of a simulation.
+    drawn dashed, e.g. the true premia of a simulation.  ``last_return``: each asset's last date with
+    a return (:meth:`panel.data.Panel.last_returns`); an asset whose last return precedes ``as_of``
+    (it has left, or its latest returns are late) is titled with that date and a dotted line marks
+    it: the paths after it are the model's prediction from that return.
     """
     assets = list(assets)
     if not assets:
@@ -193,6 +196,8 @@ def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str |
     frames = {a: estimates[estimates["asset"] == a].sort_values("date") for a in assets}
     all_dates = pd.to_datetime(estimates.loc[estimates["asset"].isin(assets), "date"])
     common = _range(np.concatenate([_band_edges(f, ppy) for f in frames.values()])) if shared_scale else None
+    ended = {} if last_return is None else \
+        {a: pd.Timestamp(last_return[a]) for a in assets if pd.Timestamp(last_return[a]) < pd.Timestamp(as_of)}
     for index, asset in enumerate(assets):
         ax = axes[index // cols, index % cols]
         frame = frames[asset]
@@ -210,7 +215,10 @@ def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str |
             ax.plot(ref.index, _annual(ref, ppy), color=_REFERENCE, lw=1.1, ls="--")
         ax.set_ylim(*(common or _range(_band_edges(frame, ppy))))
         ax.axhline(0.0, color=_ZERO, lw=0.8)
-        ax.set_title(asset, loc="left", fontsize=9.5, fontweight="bold")
+        if asset in ended:
+            ax.axvline(ended[asset], color=_ZERO, lw=1.0, ls=":")
+        ax.set_title(f"{asset} (to {_day(ended[asset])})" if asset in ended else asset, loc="left",
+                     fontsize=9.5, fontweight="bold")
         if index % cols == 0:
             ax.set_ylabel(f"premium, {UNIT}", fontsize=8.5)
         ax.tick_params(labelsize=8)
@@ -227,6 +235,8 @@ def premium_paths(estimates: pd.DataFrame, assets, ppy: int, as_of, title: str |
                Patch(color=_SMOOTHED_FILL, alpha=0.55, label="its 90% band")]
     if reference is not None:
         handles.append(Line2D([], [], color=_REFERENCE, lw=1.1, ls="--", label=reference_label))
+    if ended:
+        handles.append(Line2D([], [], color=_ZERO, lw=1.0, ls=":", label="last return (then: prediction)"))
     scale = "one scale for all panels" if shared_scale else "each panel its own scale"
     fig.suptitle(f"{title or 'Premium paths'}\nas of {_day(as_of)}; annualised %, 90% bands; {scale}",
                  fontsize=11)

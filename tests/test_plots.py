@@ -5,6 +5,7 @@ The estimates are invented (a deterministic table shaped like ``PanelFit.estimat
 
 from __future__ import annotations
 
+import matplotlib.dates as mdates
 import numpy as np
 import pandas as pd
 import pytest
@@ -61,6 +62,24 @@ def test_shared_scale_puts_every_panel_on_one_range():
     assert len(own_limits) == 5 and len(shared_limits) == 1
     assert "one scale for all panels" in shared._suptitle.get_text()
     plots.render(own), plots.render(shared)
+
+
+def test_an_asset_whose_returns_end_early_is_titled_and_marked_at_its_last_return():
+    est = _estimates(3, months=72)                 # 2015-01 to 2020-12
+    assets = sorted(est["asset"].unique())
+    last = pd.Series({assets[0]: pd.Timestamp("2018-06-30"), assets[1]: pd.Timestamp("2020-12-31"),
+                      assets[2]: pd.Timestamp("2020-11-30")})
+    fig = plots.premium_paths(est, assets, 12, "2020-12-31", last_return=last)
+    axes = [ax for ax in fig.axes if ax.get_visible()]
+    assert [ax.get_title(loc="left") for ax in axes] == [
+        f"{assets[0]} (to 2018-06-30)", assets[1], f"{assets[2]} (to 2020-11-30)"]
+    dotted = [[line for line in ax.lines if line.get_linestyle() == ":"] for ax in axes]
+    assert [len(d) for d in dotted] == [1, 0, 1]
+    assert mdates.date2num(dotted[0][0].get_xdata()[0]) == mdates.date2num(pd.Timestamp("2018-06-30"))
+    assert "last return (then: prediction)" in [t.get_text() for t in fig.legends[0].get_texts()]
+    plain = plots.premium_paths(est, assets, 12, "2020-12-31")
+    assert [ax.get_title(loc="left") for ax in plain.axes if ax.get_visible()] == assets
+    plots.render(fig)
 
 
 def test_date_ticks_sit_on_the_period_end_they_name():

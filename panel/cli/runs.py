@@ -562,7 +562,7 @@ def plot(
                 chosen = list(asset) if asset else assets[:4]
                 fig = plots.premium_paths(run_tables(store, run_id)["estimates"], chosen, ppy, as_of,
                                           title=plots.heading("Premium paths", dataset, label),
-                                          shared_scale=same_scale)
+                                          shared_scale=same_scale, last_return=inputs.panel.last_returns())
             elif chart == Chart.cross_section:
                 cs, _ = stored_cross_section(store, run_id, when, kind.value)   # Bayes: over its draws
                 fig = plots.cross_section_chart(cs.table(), ppy, cs.date, kind.value, as_of,

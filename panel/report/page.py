@@ -216,7 +216,8 @@ def _cross_section(c: ReportContent) -> str:
 def _paths(c: ReportContent) -> str:
     shown = c.charted
     fig = plots.premium_paths(c.tables["estimates"], shown, c.ppy, c.run["as_of"],
-                              title=plots.heading("Premium paths", c.dataset, c.run.get("label")))
+                              title=plots.heading("Premium paths", c.dataset, c.run.get("label")),
+                              last_return=c.panel.last_returns())
     note = "" if len(shown) == len(c.assets) else \
         (f'<p class="note">The first {len(shown)} of {len(c.assets)} assets; <code>riskprem plot '
          f"{_e(c.run['id'])} --asset NAME</code> draws others.</p>")
