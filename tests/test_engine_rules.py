@@ -237,6 +237,33 @@ def test_parameters_at_a_bound_get_no_standard_error():
     assert "no standard errors for parameters at a bound" in res.message
 
 
+def test_a_progress_with_a_stage_hears_of_the_standard_errors_and_counts_their_e_steps():
+    # the standard errors take one E-step per free parameter not at a bound; a progress object
+    # with a stage() method is told so and then counts them, and the numbers do not change
+    rng = np.random.default_rng(9)
+    data = one_asset(0.005 + rng.normal(0, 0.04, 240), start="1990-01-31")
+    spec = panel.ModelSpec(std_errors="always")
+
+    class Recorder:
+        def __init__(self):
+            self.calls, self.stages = [], []
+
+        def __call__(self, n, objective):
+            self.calls.append((n, objective))
+
+        def stage(self, name, expected):
+            self.stages.append((name, expected, len(self.calls)))
+
+    seen = Recorder()
+    res = panel.fit(data, spec, progress=seen)
+    plain = panel.fit(data, spec)
+    pd.testing.assert_frame_equal(res.parameters, plain.parameters)
+    [(name, expected, at)] = seen.stages
+    assert name == "standard errors" and expected == 1     # the return variance; the premium one is at zero
+    assert seen.calls[at:] == [(1, None)]
+    assert all(objective is not None for _, objective in seen.calls[:at])
+
+
 def test_multi_start_keeps_the_best_and_is_deterministic():
     from panel.bench.fit import simulate
 

@@ -31,6 +31,22 @@ _FILE_PARAMS = ("layout", "units", "returns", "total_returns", "risk_free", "dat
                 "frequency", "asset_col", "value_col", "min_obs", "refuse_short", "allow_extreme")
 
 
+class _FitProgress:
+    """The fit's progress on the bar: E-steps (or sweeps) with the objective, then the standard
+    errors' E-steps under their own name (``panel.model.fit.fit``'s ``progress``)."""
+
+    def __init__(self, bar, label: str):
+        self.bar, self.label = bar, label
+
+    def __call__(self, n, objective) -> None:
+        self.bar.update(n, description=self.label if objective is None else
+                        f"{self.label}, objective {objective:,.2f}")
+
+    def stage(self, name: str, expected: int) -> None:
+        self.label = f"{name}, E-steps"
+        self.bar.update(0, description=self.label, total=max(expected, 1))
+
+
 def _file_options_given(ctx: typer.Context) -> bool:
     """Whether any file option was given on the command line (they mean nothing with --data)."""
     return any(getattr(ctx.get_parameter_source(p), "name", None) in ("COMMANDLINE", "ENVIRONMENT")
@@ -185,9 +201,7 @@ def fit(
             label_text = f"sampling ({len(vintage.assets)} assets x {len(vintage.dates)} dates), sweeps"
             total = spec.chains * (spec.draws + (spec.draws if spec.warmup is None else spec.warmup))
         with progress(st, label_text, total=total) as bar:
-            result = estimate(vintage, spec, progress=lambda n, objective: bar.update(
-                n, description=label_text if objective is None else
-                f"{label_text}, objective {objective:,.2f}"))
+            result = estimate(vintage, spec, progress=_FitProgress(bar, label_text))
     from panel.store import write_dataset, write_run
 
     with store_for(st, write=True) as store, user_errors():

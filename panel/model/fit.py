@@ -44,7 +44,10 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     spec : ModelSpec (default settings when None).
     start : Params to start from (a warm start); None uses the moment-based rule.
     progress : optional ``callable(n_estep, objective)``, called after every accepted EM step (a
-        Bayesian spec: ``callable(n_sweeps, None)`` after every sweep of every chain).
+        Bayesian spec: ``callable(n_sweeps, None)`` after every sweep of every chain).  If it also
+        has a ``stage(name, expected)`` method, that is called when the standard errors start
+        (``expected`` E-steps, one per free parameter not at a bound), and the callable then counts
+        their E-steps from 1 with ``objective`` None.
 
     ``spec.estimation == "bayes"`` samples the posterior instead (:mod:`panel.bayes.estimate`).
     """
@@ -90,14 +93,16 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
     want_se = spec.std_errors == "always" or (spec.std_errors == "auto" and n_free <= AUTO_SE_LIMIT)
     if n_free and want_se:
         q_bound, psi_bound, _ = _at_bounds(p, rs, floor)
+        at_bound = prob.packer.packed_variances(q_bound, psi_bound)
         forward = {}
         if spec.loglik_tol is not None:     # the score at the optimum is free: forward differences
             forward = {"base": ms.expected_complete_loglik_grad(e, p, rs, prob.packer, prob.sigma_prior,
                                                                 prob.h_prior),
                        "rel_step": inference.FORWARD_STEP,
                        "central_fallback": spec.stopping != "gradient"}
-        se, se_note = inference.standard_errors(p, prob.packer, lambda th: prob.score(th, p), rs.structure,
-                                                at_bound=prob.packer.packed_variances(q_bound, psi_bound),
+        expected = int(np.size(at_bound) - np.sum(at_bound)) * (1 if forward else 2)
+        score = _reporting(lambda th: prob.score(th, p), progress, expected)
+        se, se_note = inference.standard_errors(p, prob.packer, score, rs.structure, at_bound=at_bound,
                                                 **forward)
     elif n_free and spec.std_errors == "auto":
         se_note = f"standard errors skipped ({n_free} free parameters > {AUTO_SE_LIMIT}; std_errors='always' forces them)"
@@ -105,6 +110,24 @@ def fit(data, spec: ModelSpec | None = None, start: Params | None = None, *,
         message = f"{message}; {se_note}"
     return _result(prob, p, start, loglik, objective, n_free, n_iter, status, message, trace, se,
                    time.perf_counter() - t0)
+
+
+def _reporting(score, progress, expected: int):
+    """``score`` that counts its calls to ``progress`` when ``progress`` has a ``stage`` method
+    (``fit``'s docstring), announcing about ``expected`` of them: the standard errors take one
+    E-step per free parameter (two by central differences), on a slow panel as long as the fit."""
+    stage = getattr(progress, "stage", None)
+    if stage is None:
+        return score
+    stage("standard errors", expected)
+    calls = [0]
+
+    def counted(theta):
+        out = score(theta)
+        calls[0] += 1
+        progress(calls[0], None)
+        return out
+    return counted
 
 
 def _estimate(prob: Problem, p0: Params, floor: np.ndarray, progress):
