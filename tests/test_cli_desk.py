@@ -159,6 +159,17 @@ def test_fast_cross_section_matches_the_full_report(cli_store):
                 np.testing.assert_allclose(fast.cov, slow.cov, rtol=1e-10, atol=1e-18)
 
 
+def test_the_latest_table_looks_back_a_calendar_year_at_any_frequency():
+    from panel.cli.fitting import year_before
+
+    cases = [("ME", 30, "2020-06-30"), ("ME", 13, "2019-01-31"), ("ME", 12, None),
+             ("B", 600, "2020-04-17"),            # 2021-04-19 less a year is a Sunday: the Friday before
+             ("W-FRI", 120, "2020-04-10"), ("QE", 12, "2020-12-31"), ("YE", 5, "2022-12-31")]
+    for freq, n, want in cases:
+        got = year_before(pd.date_range("2019-01-01", periods=n, freq=freq))
+        assert (None if got is None else str(got.date())) == want, (freq, n)
+
+
 def test_cli_import_loads_no_heavy_library():
     code = ("import sys, panel.cli.app; heavy = [m for m in ('pandas', 'sqlalchemy', 'duckdb', 'scipy') "
             "if m in sys.modules]; print(heavy)")

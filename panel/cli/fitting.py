@@ -53,6 +53,16 @@ def _file_options_given(ctx: typer.Context) -> bool:
                for p in _FILE_PARAMS)
 
 
+def year_before(dates):
+    """The last of ``dates`` (a DatetimeIndex) on or before a calendar year before the last one,
+    or None: counting back periods a year would miss on business-day data (about 261 dates a
+    year against 252 periods)."""
+    import pandas as pd
+
+    back = int(dates.searchsorted(dates[-1] - pd.DateOffset(years=1), side="right")) - 1
+    return dates[back] if back >= 0 else None
+
+
 def latest_rows(result, ppy: int) -> tuple[list, dict, bool]:
     """Rows of the latest-premia table, the same numbers for JSON (per period), and whether an
     asset's last return precedes the last date (its label says so)."""
@@ -60,7 +70,7 @@ def latest_rows(result, ppy: int) -> tuple[list, dict, bool]:
 
     est = result.estimates
     last = result.dates[-1]
-    year_back = result.dates[-1 - ppy] if len(result.dates) > ppy else None
+    year_back = year_before(result.dates)
     cs = result.cross_section(last, "filtered")
     prob = dict(zip(cs.assets, cs.prob_positive))
     last_return = dict(zip(cs.assets, cs.last_return))
