@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import html
 import json
+import re
 
 import numpy as np
 import pandas as pd
@@ -303,6 +304,21 @@ def test_reproduce_exact_and_writes_nothing_unless_saved(cli_store):
     saved = _json(cli_store.invoke("reproduce", "1", "--save", "--json"))
     run = _json(cli_store.invoke("show", str(saved["saved_run"]), "--json"))
     assert run["kind"] == "reproduce" and run["parent_run"] == 1
+
+
+def test_reproduce_shows_the_blas_and_its_thread_limit_beside_the_platform(cli_store, monkeypatch):
+    # the BLAS kernel and thread count decide the last bits of every product (README: reproduce):
+    # a rebuild under another thread limit says so in the environment, whatever its numbers
+    def platform(result):
+        rows = {e["field"]: e for e in json.loads(result.stdout)["environment"]}
+        return rows["platform"]
+
+    same = platform(cli_store.invoke("reproduce", "1", "--json"))
+    assert same["same"] and re.search(r"; BLAS .+, (\d+ threads?|no thread limit)$", same["recorded"])
+    monkeypatch.setenv("RISKPREM_BLAS_THREADS", "3")
+    other = platform(cli_store.invoke("reproduce", "1", "--json"))
+    assert not other["same"] and other["current"].endswith(", 3 threads")
+    assert other["recorded"] == same["recorded"]
 
 
 def test_reproduce_fails_when_a_stored_number_was_changed(cli_store):
