@@ -307,6 +307,17 @@ def test_the_fit_table_marks_assets_that_have_left(tmp_path):
     expected = frame.apply(lambda c: c.last_valid_index())
     assert dict(zip(cs.assets, cs.last_return)) == expected.to_dict()
     assert asset_labels(cs.table(), frame.index[-1]).count("Alder (to 2019-02-28)") == 1
+    # diff against a vintage cut before either stopped: marked once, by the later run's data
+    store = ["--store", str(tmp_path / "s.duckdb")]
+    early = CliRunner().invoke(app, [*store, "fit", "--data", "left", "--as-of", "2019-01-31",
+                                     *CLI_FIT_OPTIONS], catch_exceptions=False)
+    assert early.exit_code == 0, early.output
+    both = " ".join(CliRunner().invoke(app, [*store, "diff", "1", "2"], catch_exceptions=False).output.split())
+    assert "Alder (to 2019-02-28)" in both and "Douglas (to 2019-11-30)" in both
+    assert both.count("(to ") == 2 and "'to DATE' marks an asset's last return before a run's" in both
+    rows = json.loads(CliRunner().invoke(app, [*store, "diff", "1", "2", "--json"]).stdout)["premia"]
+    alder = next(r for r in rows if r["asset"] == "Alder")
+    assert alder["last_return_a"].startswith("2019-02-28") and alder["last_return_b"].startswith("2019-01-31")
 
 
 @BOTH
