@@ -275,7 +275,7 @@ def test_a_cross_section_before_an_entry_names_the_assets_not_yet_in_the_panel(c
     out = cli_store.invoke("cross-section", 1, "--date", "2015-12-31")
     assert out.exit_code == 0, out.output
     text = " ".join(out.output.split())
-    assert "Not ranked: 1 of the run's assets have no return yet by 2015-12-31 (Elm)." in text
+    assert "Not ranked: 1 of the run's assets has no return yet by 2015-12-31 (Elm)." in text
     assert " Elm " not in text.split("Not ranked")[0]
     data = json.loads(cli_store.invoke("cross-section", 1, "--date", "2015-12-31", "--json").output)
     assert data["not_entered"] == ["Elm"] and "Elm" not in data["assets"]

@@ -389,6 +389,6 @@ def stale_caption(ranked, when, caption: str | None, later=()) -> str | None:
     if len(later):
         shown = ", ".join(later[:LATER_SHOWN]) + (f" and {len(later) - LATER_SHOWN} more"
                                                   if len(later) > LATER_SHOWN else "")
-        parts.append(f"Not ranked: {len(later)} of the run's assets have no return yet by "
-                     f"{day(when)} ({shown}).")
+        parts.append(f"Not ranked: {len(later)} of the run's assets "
+                     f"{'has' if len(later) == 1 else 'have'} no return yet by {day(when)} ({shown}).")
     return " ".join(parts) or None
