@@ -174,6 +174,12 @@ CsvFlag = Annotated[bool, typer.Option("--csv", help="CSV on stdout (per-period 
 RunArg = Annotated[int, typer.Argument(metavar="RUN", help="Run id (see `riskprem runs`).", show_default=False)]
 
 
+def run_ppy(inputs) -> int:
+    """Periods a year of a stored run's inputs (``panel.vintages.reproduce.run_inputs``): its
+    spec's, else its panel's."""
+    return int(inputs.spec.periods_per_year or inputs.panel.periods_per_year)
+
+
 def parse_date(value: str | None, option: str):
     """``value`` as a normalised ``pd.Timestamp`` (None stays None); not a date: exit 2."""
     if value is None:

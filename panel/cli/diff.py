@@ -1,4 +1,5 @@
-"""``riskprem diff``: two stored runs side by side (opens the store read-only)."""
+"""``riskprem diff``: two stored runs side by side (opens the store read-only; registered by
+:mod:`panel.cli.runs`, so that help lists it among the commands that read runs)."""
 
 from __future__ import annotations
 
@@ -8,8 +9,7 @@ import typer
 
 from panel import units
 from panel.cli import output
-from panel.cli.common import CsvFlag, JsonFlag, state, store_for, user_errors
-from panel.cli.runs import _ppy, _spec_lines
+from panel.cli.common import CsvFlag, JsonFlag, run_ppy, state, store_for, user_errors
 
 
 def _param_summary(frame, side: str, ppy: int) -> dict[str, dict]:
@@ -41,6 +41,7 @@ def diff(ctx: typer.Context,
     """Two runs side by side: fit statistics, settings that differ, latest premia and parameters."""
     import pandas as pd
 
+    from panel.report.content import setting_lines  # one wording for the terminal and the report
     from panel.store import is_bayes, run_query, run_tables
     from panel.vintages.reproduce import run_inputs, stored_params
 
@@ -51,10 +52,10 @@ def diff(ctx: typer.Context,
         est = [run_tables(store, r, kinds=("estimates",))["estimates"] for r in (run_a, run_b)]
         changes = run_query(store, "parameter_changes", {"run_a": run_a, "run_b": run_b})
     runs_ = [i.run for i in inputs]
-    ppy = [_ppy(i) for i in inputs]
+    ppy = [run_ppy(i) for i in inputs]
     # compare the settings as they resolve on each run's data (auto choices filled in, volatilities
     # in today's convention), so two records of the same model are not "different"
-    lines = [dict(_spec_lines(i.spec, i.run["settings"] or {}, p, y)) for i, p, y in zip(inputs, params, ppy)]
+    lines = [dict(setting_lines(i.spec, i.run["settings"] or {}, p, y)) for i, p, y in zip(inputs, params, ppy)]
     if runs_[0]["dataset_hash"] != runs_[1]["dataset_hash"]:
         for side, run in zip(lines, runs_):
             side["dataset"] = output.short_hash(run["dataset_hash"])

@@ -11,8 +11,9 @@ import typer
 
 from panel import units
 from panel.cli import output
-from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, fail, parse_date, state,
-                              store_for, user_errors)
+from panel.cli.common import (CsvFlag, JsonFlag, Kind, KindOrBoth, RunArg, fail, parse_date, run_ppy,
+                              state, store_for, user_errors)
+from panel.cli.diff import diff
 from panel.files import check_target, write_atomically
 
 ENV_FIELDS = ("riskprem_version", "git_commit", "python_version", "numpy_version", "scipy_version",
@@ -30,10 +31,6 @@ def _first_name(names: str) -> str:
     """``a, b, c`` -> ``a (+2)``: a run table shows one of a dataset's names."""
     parts = [p for p in str(names).split(", ") if p]
     return "" if not parts else parts[0] + (f" (+{len(parts) - 1})" if len(parts) > 1 else "")
-
-
-def _ppy(inputs) -> int:
-    return int(inputs.spec.periods_per_year or inputs.panel.periods_per_year)
 
 
 def _spec_lines(spec, settings: dict, params, ppy: int) -> list[tuple[str, str]]:
@@ -119,7 +116,7 @@ def show(ctx: typer.Context, run_id: RunArg, as_json: JsonFlag = False) -> None:
         tables = run_tables(store, run_id)
         params = stored_params(store, inputs, tables)
         names = _names(store)
-    run, ppy, assets = inputs.run, _ppy(inputs), list(inputs.panel.assets)
+    run, ppy, assets = inputs.run, run_ppy(inputs), list(inputs.panel.assets)
     settings = run["settings"] or {}
     diag = tables["diagnostics"]
     if as_json:
@@ -293,7 +290,7 @@ def cross_section(
     ranked = cs.table()
     later = [a for a in inputs.panel.assets if a not in set(cs.assets)]     # no return yet
     matrix = cs.prob_greater.loc[list(ranked["asset"]), list(ranked["asset"])]
-    ppy = _ppy(inputs)
+    ppy = run_ppy(inputs)
     if as_json:
         output.emit_json({"run_id": run_id, "date": cs.date, "kind": kind.value, "as_of": as_of,
                           "periods_per_year": ppy, "units": output.MACHINE_UNITS, "ranked": ranked,
@@ -410,7 +407,7 @@ def plot(
         if chart != Chart.paths and (when < inputs.panel.dates[0] or when > as_of):
             fail(f"--date {when.date()} is outside run {run_id}'s dates {inputs.panel.dates[0].date()} to "
                  f"{as_of.date()}; give a date in that range")
-        ppy = _ppy(inputs)
+        ppy = run_ppy(inputs)
         try:
             if chart == Chart.paths:
                 chosen = list(asset) if asset else assets[:4]
@@ -440,8 +437,6 @@ def plot(
 
 
 def register(app: typer.Typer) -> None:
-    from panel.cli.diff import diff      # it uses this module's helpers
-
     app.command("runs")(runs)
     app.command("show")(show)
     app.command("estimates")(estimates)
