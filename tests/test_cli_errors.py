@@ -66,6 +66,14 @@ def test_bad_option_values_are_user_errors(cli_unchanged, args, fragments):
     _one_line_error(cli_unchanged.invoke(*args), *fragments)
 
 
+@pytest.mark.parametrize("args", [["fit", "--data", "trees", *CLI_FIT_OPTIONS], ["reproduce", "1"]])
+def test_a_bad_blas_thread_setting_is_one_line(cli_unchanged, monkeypatch, args):
+    # read by every fit and recorded with every run: refused before anything runs
+    monkeypatch.setenv("RISKPREM_BLAS_THREADS", "abc")
+    _one_line_error(cli_unchanged.invoke(*args), "RISKPREM_BLAS_THREADS='abc' is not a whole number",
+                    "0 for no limit")
+
+
 @pytest.mark.parametrize("args,fragments", [
     (["fit", "--data", "trees", "--fix", "premium_vol=abc"], ["--fix", "not a number"]),
     (["fit", "--data", "trees", "--fix", "premium_vol"], ["not NAME=VALUE"]),

@@ -16,8 +16,9 @@ from typer.core import TyperGroup
 
 from panel import __version__
 from panel.cli import output
-from panel.cli.common import DEFAULT_LOCK_WAIT, JsonFlag, State
+from panel.cli.common import DEFAULT_LOCK_WAIT, JsonFlag, State, fail
 from panel.cli.output import ANNUALISING
+from panel.threads import blas_threads
 
 COMMAND_MODULES = (
     "panel.cli.data",        # ingest, datasets
@@ -107,6 +108,10 @@ def root(
         help="Print the riskprem version and exit.")] = False,
 ) -> None:
     ctx.obj = State(store=store, quiet=quiet, verbose=verbose and not quiet, lock_wait=lock_wait)
+    try:
+        blas_threads()                  # read by every fit and every run's record: checked once, here
+    except ValueError as error:
+        fail(str(error))
 
 
 def _print_version(value: bool) -> None:
